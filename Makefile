@@ -1,0 +1,30 @@
+# Two commands on a fresh machine: `make demo` and `make test`.
+PYTHON ?= python3
+VENV   := .venv
+BIN    := $(VENV)/bin
+DEMO_OUT := demo_output
+
+.PHONY: demo test venv clean bench lint
+
+$(BIN)/activate:
+	rm -rf $(VENV)
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+
+venv-base: $(BIN)/activate
+	$(BIN)/python -m pip install --quiet -e '.[all]'
+
+venv-test: $(BIN)/activate
+	$(BIN)/python -m pip install --quiet -e '.[test]'
+
+demo: venv-base
+	$(BIN)/python sample_catalogues/demo.py --out $(DEMO_OUT)
+
+test: venv-test
+	$(BIN)/python -m pytest -n 2 -q
+
+bench: venv-test
+	$(BIN)/python benchmarks/run_all.py
+
+clean:
+	rm -rf $(VENV) $(DEMO_OUT) build *.egg-info

@@ -1,0 +1,213 @@
+"""The plugin API: everything an annotator (built-in or third-party) is written against.
+
+An annotator is a class registered through the ``register_annotators`` hook. For each job the
+core calls :meth:`Annotator.configure` with a :class:`Setup` (its options, the catalogue's
+columns, the job's cosmology, a safe way to read its data files). ``configure`` returns an
+instance describing what it needs (:attr:`requires`, :attr:`optional`), what it adds
+(:attr:`provides`) and which flags it may raise, or ``None`` when it does not apply to this
+job. The core then orders the instances, builds the output schema and calls
+:meth:`Annotator.annotate` once per batch with a :class:`Batch`.
+
+Walls: an annotator never opens files itself (``Setup.read_table`` does that for it, with
+errors naming the file), never sees the CLI or the service, and keeps no per-batch state. Its
+instance is pickled to Dask workers, so it holds only arrays, numbers and picklable objects.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, ClassVar
+
+import numpy as np
+import pyarrow as pa
+
+from .columns import ColumnSpec
+from .errors import ConfigError
+
+__all__ = ["Annotator", "Setup", "Batch", "ColumnSpec"]
+
+
+class Annotator:
+    """Base class of every annotator.
+
+    Class attributes (read before any job is configured, e.g. by ``annotator plugins``):
+
+    * ``name``: unique identifier, the key under ``[annotators]`` in a job file.
+    * ``version``: the annotator's own version, recorded in every output.
+    * ``summary``: one line for ``annotator plugins``.
+    * ``sections``: top-level job-file tables this annotator owns (e.g. ``("bands",)``).
+    * ``column_settings``: keys of ``[columns]`` that are settings, not column mappings.
+    * ``input_hints``: for a logical input, catalogue column names to try when unmapped.
+    * ``enabled_by_default``: whether it runs when the job file does not mention it.
+    * ``position``: tie-break for the order of annotators (and so of output columns) when
+      their inputs do not decide it; built-ins use 10-90, third parties default to 100.
+
+    Instance attributes (set by ``configure``):
+
+    * ``requires`` / ``optional``: logical names it reads: catalogue inputs (``"redshift"``) or
+      columns other annotators add (``"comoving_distance_mpc"``).
+    * ``provides``: the :class:`ColumnSpec` of each column it adds, in output order.
+    * ``redefines``: ``{logical: column}``; later annotators that ask for ``logical`` get
+      ``column`` instead (a CMB-frame redshift redefines ``"redshift"``).
+    * ``flags``: ``{reason: description}`` of the flags it may raise.
+    * ``column_map``: ``{logical: catalogue column}`` it resolved itself (e.g. per-band magnitudes).
+    """
+
+    name: ClassVar[str] = ""
+    version: ClassVar[str] = "0"
+    summary: ClassVar[str] = ""
+    sections: ClassVar[tuple[str, ...]] = ()
+    column_settings: ClassVar[tuple[str, ...]] = ()
+    input_hints: ClassVar[Mapping[str, Sequence[str]]] = {}
+    enabled_by_default: ClassVar[bool] = True
+    position: ClassVar[int] = 100
+
+    requires: tuple[str, ...] = ()
+    optional: tuple[str, ...] = ()
+    provides: tuple[ColumnSpec, ...] = ()
+    redefines: Mapping[str, str] = {}
+    flags: Mapping[str, str] = {}
+    column_map: Mapping[str, str] = {}
+
+    @classmethod
+    def configure(cls, setup: "Setup") -> "Annotator | None":
+        """Return an instance for this job, or ``None`` when the annotator does not apply.
+
+        Raise :class:`annotator.errors.ConfigError` (``setup.error(key, why)``) for bad options.
+        The default accepts no options and returns ``cls()``.
+        """
+        setup.reject_unknown_options(())
+        return cls()
+
+    def prepare(self) -> None:
+        """Build heavy shared state (tables) once per job, before the first batch."""
+
+    def annotate(self, batch: "Batch") -> Mapping[str, Any]:
+        """Return ``{column name: values}`` for every column in :attr:`provides`.
+
+        Values may be a numpy array (float NaN becomes null), a ``numpy.ma.MaskedArray``
+        (masked becomes null) or a ``pyarrow.Array``. Raise flags with ``batch.flag``.
+        """
+        raise NotImplementedError(f"annotator {self.name!r} does not implement annotate()")
+
+    # -- helpers -----------------------------------------------------------------------
+    @classmethod
+    def origin(cls) -> str:
+        return f"{cls.__module__}.{cls.__qualname__}"
+
+
+@dataclass
+class Setup:
+    """What ``Annotator.configure`` sees of the job.
+
+    :ivar annotator_name: the annotator being configured (used in error messages).
+    :ivar options: its ``[annotators.<name>]`` table, without ``enabled``.
+    :ivar sections: the top-level tables it declared in ``Annotator.sections``.
+    :ivar columns: the job's ``[columns]`` table (mappings and settings).
+    :ivar catalogue_schema: the Arrow schema of the input catalogue.
+    :ivar cosmology: the job's :class:`annotator.cosmology.Cosmology`.
+    :ivar base_dir: folder that relative paths in the job file are resolved against.
+    """
+
+    annotator_name: str
+    options: dict
+    sections: dict
+    columns: dict
+    catalogue_schema: pa.Schema
+    cosmology: Any
+    base_dir: Path
+    explicitly_enabled: bool = False
+
+    def error(self, key: str, why: str) -> ConfigError:
+        """A ConfigError naming ``[annotators.<name>].key`` (or a section key as given)."""
+        where = key if key.startswith("[") else f"[annotators.{self.annotator_name}].{key}"
+        return ConfigError(f"{where}: {why}")
+
+    def reject_unknown_options(self, known: Sequence[str]) -> None:
+        unknown = sorted(set(self.options) - set(known))
+        if unknown:
+            allowed = ", ".join(sorted(known)) or "none"
+            raise self.error(unknown[0], f"unknown option (allowed: {allowed})")
+
+    def has_column(self, name: str) -> bool:
+        return name in self.catalogue_schema.names
+
+    def resolve_path(self, path: str | Path) -> Path:
+        p = Path(path).expanduser()
+        return p if p.is_absolute() else (self.base_dir / p)
+
+    def read_table(self, path: str | Path, *, what: str, min_columns: int = 2) -> np.ndarray:
+        """Read a small numeric text table (CSV or whitespace separated, '#' comments).
+
+        Returns a float64 array of shape (rows, columns). Errors name ``what`` and the file.
+        """
+        from .io.tables import read_numeric_table
+
+        return read_numeric_table(self.resolve_path(path), what=what, min_columns=min_columns)
+
+
+class Batch:
+    """One batch of rows, as an annotator sees it.
+
+    Names are logical names (as in ``requires``); the core has already resolved them to
+    catalogue columns or to columns of earlier annotators.
+    """
+
+    __slots__ = ("_record_batch", "_resolve", "_computed", "_flagger", "_owner", "num_rows")
+
+    def __init__(self, record_batch: pa.RecordBatch, resolve, computed, flagger, owner: str):
+        self._record_batch = record_batch
+        self._resolve = resolve
+        self._computed = computed
+        self._flagger = flagger
+        self._owner = owner
+        self.num_rows = record_batch.num_rows
+
+    def has(self, name: str) -> bool:
+        """Whether the logical input ``name`` is available (always true for ``requires``)."""
+        return name in self._resolve
+
+    def array(self, name: str) -> pa.Array:
+        """The column as an Arrow array, with its own type and nulls."""
+        target = self._resolve.get(name)
+        if target is None:
+            raise KeyError(f"annotator {self._owner!r} did not declare input {name!r}")
+        kind, column = target
+        if kind == "computed":
+            return self._computed[column][0]
+        arr = self._record_batch.column(column)
+        return arr
+
+    def values(self, name: str) -> np.ndarray:
+        """The column as float64 numpy values, NaN where null (read-only view when possible)."""
+        target = self._resolve.get(name)
+        if target is None:
+            raise KeyError(f"annotator {self._owner!r} did not declare input {name!r}")
+        kind, column = target
+        if kind == "computed":
+            entry = self._computed[column]
+            if entry[1] is None:
+                entry[1] = _as_float(entry[0])
+            return entry[1]
+        return _as_float(self._record_batch.column(column))
+
+    def flag(self, reason: str, mask: np.ndarray) -> None:
+        """Add ``reason`` to ``annotation_flags`` of the rows where ``mask`` is true."""
+        self._flagger(self._owner, reason, mask)
+
+
+def _as_float(arr: pa.Array) -> np.ndarray:
+    if pa.types.is_floating(arr.type) and arr.type != pa.float64():
+        arr = arr.cast(pa.float64())
+    elif not pa.types.is_floating(arr.type):
+        if pa.types.is_integer(arr.type) or pa.types.is_boolean(arr.type) or pa.types.is_decimal(
+            arr.type
+        ):
+            arr = arr.cast(pa.float64())
+        else:
+            raise TypeError(f"column of type {arr.type} is not numeric")
+    if isinstance(arr, pa.ChunkedArray):
+        arr = arr.combine_chunks()
+    return arr.to_numpy(zero_copy_only=False)

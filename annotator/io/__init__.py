@@ -1,0 +1,1 @@
+"""Streaming readers, the atomic part writer, checkpoints and small data tables."""

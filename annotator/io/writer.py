@@ -1,0 +1,78 @@
+"""Atomic Parquet part files: written under a temporary name, fsync'ed, then renamed."""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+REJECTED_DIR = "rejected"
+TMP_SUFFIX = ".tmp"
+
+REJECTED_SCHEMA = pa.schema(
+    [
+        pa.field("source", pa.string()),
+        pa.field("row", pa.int64()),
+        pa.field("reason", pa.string()),
+        pa.field("raw", pa.string()),
+    ]
+)
+
+
+def part_name(source_index: int, chunk_index: int) -> str:
+    """Deterministic part name: the same chunk of the same input always gets the same name."""
+    return f"part-{source_index:05d}-{chunk_index:06d}.parquet"
+
+
+def _fsync_dir(path: Path) -> None:
+    try:
+        fd = os.open(path, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
+
+
+def write_parquet_atomic(
+    table: pa.Table, path: Path, *, compression: str, metadata: dict | None = None
+) -> int:
+    """Write ``table`` to ``path`` so that ``path`` is either absent or complete.
+
+    :return: the size of the file in bytes.
+    """
+    path = Path(path)
+    tmp = path.with_name(path.name + TMP_SUFFIX)
+    if metadata is not None:
+        table = table.replace_schema_metadata(metadata)
+    codec = None if compression == "none" else compression
+    with open(tmp, "wb") as fh:
+        pq.write_table(
+            table,
+            fh,
+            compression=codec,
+            row_group_size=max(table.num_rows, 1),
+            write_statistics=True,
+        )
+        fh.flush()
+        os.fsync(fh.fileno())
+    os.replace(tmp, path)
+    _fsync_dir(path.parent)
+    return path.stat().st_size
+
+
+def rejected_table(records: list[dict]) -> pa.Table:
+    return pa.Table.from_pylist(records, schema=REJECTED_SCHEMA)
+
+
+def remove_stale_temporaries(folder: Path) -> None:
+    """Temporary files left by a crash are never valid output."""
+    for sub in (folder, folder / REJECTED_DIR):
+        if sub.is_dir():
+            for p in sub.glob("*" + TMP_SUFFIX):
+                p.unlink(missing_ok=True)

@@ -1,0 +1,159 @@
+"""Apply a plan to one batch: the single code path every engine uses.
+
+:class:`Pipeline` holds only the configured annotators, how their inputs resolve and the
+output schema, so it pickles small and is shipped as-is to Dask workers.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pyarrow as pa
+
+from .api import Batch
+from .columns import FLAGS_COLUMN
+from .errors import PluginError
+
+FLAG_SEPARATOR = ";"
+
+
+@dataclass
+class PipelineStep:
+    name: str
+    annotator: object
+    resolve: dict
+    columns: list  # ColumnSpec
+
+
+class Pipeline:
+    """Annotators in order, ready to run on batches."""
+
+    def __init__(self, steps: list[PipelineStep], output_schema: pa.Schema,
+                 flag_reasons: list[str], schema_metadata: dict | None = None):
+        self.steps = steps
+        self.output_schema = output_schema
+        self.flag_reasons = list(flag_reasons)
+        self.flag_bits = {r: i for i, r in enumerate(self.flag_reasons)}
+        self.schema_metadata = schema_metadata or {}
+        self._prepared = False
+
+    @classmethod
+    def from_plan(cls, plan, schema_metadata: dict | None = None) -> "Pipeline":
+        steps = [PipelineStep(s.name, s.annotator, dict(s.resolve), list(s.annotator.provides))
+                 for s in plan.steps]
+        return cls(steps, plan.output_schema, [r for r, _, _ in plan.flag_reasons],
+                   schema_metadata)
+
+    def __getstate__(self):
+        state = self.__dict__.copy()
+        state["_prepared"] = False
+        return state
+
+    def prepare(self) -> None:
+        """Build each annotator's heavy tables once (per process)."""
+        if not self._prepared:
+            for step in self.steps:
+                step.annotator.prepare()
+            self._prepared = True
+
+    def annotate(self, table: pa.Table) -> tuple[pa.Table, dict[str, int], int]:
+        """Annotate one batch.
+
+        :return: the output table, the count of rows raising each flag, the count of rows with
+            at least one flag.
+        """
+        self.prepare()
+        n = table.num_rows
+        n_words = max(1, (len(self.flag_reasons) + 63) // 64)
+        bits = np.zeros((n_words, n), dtype=np.uint64)
+        computed: dict[str, list] = {}
+
+        def flagger(owner: str, reason: str, mask) -> None:
+            bit = self.flag_bits.get(reason)
+            if bit is None:
+                raise PluginError(
+                    f"annotator {owner!r} raised flag {reason!r}, which it did not declare "
+                    f"in its 'flags'"
+                )
+            mask = np.asarray(mask, dtype=bool)
+            if mask.shape != (n,):
+                raise PluginError(f"annotator {owner!r}: flag {reason!r} mask has shape "
+                                  f"{mask.shape}, expected ({n},)")
+            bits[bit // 64][mask] |= np.uint64(1 << (bit % 64))
+
+        for step in self.steps:
+            batch = Batch(table, step.resolve, computed, flagger, step.name)
+            try:
+                result = step.annotator.annotate(batch)
+            except PluginError:
+                raise
+            except Exception as exc:
+                raise PluginError(f"annotator {step.name!r} failed on a batch: "
+                                  f"{type(exc).__name__}: {exc}") from exc
+            for spec in step.columns:
+                if spec.name not in result:
+                    raise PluginError(f"annotator {step.name!r} did not return column "
+                                      f"{spec.name!r}")
+                computed[spec.name] = [_to_arrow(result[spec.name], spec, n, step.name), None]
+                if isinstance(result[spec.name], np.ndarray) and \
+                        result[spec.name].dtype == np.float64:
+                    computed[spec.name][1] = result[spec.name]
+
+        columns = list(table.columns)
+        for step in self.steps:
+            for spec in step.columns:
+                columns.append(computed[spec.name][0])
+        flags_array, counts = self._flags(bits)
+        columns.append(flags_array)
+        out = pa.Table.from_arrays(columns, schema=self.output_schema)
+        flagged = int(np.count_nonzero(bits.any(axis=0))) if n else 0
+        return out, counts, flagged
+
+    def _flags(self, bits: np.ndarray) -> tuple[pa.Array, dict[str, int]]:
+        n = bits.shape[1]
+        counts: dict[str, int] = {}
+        if n == 0:
+            return pa.array([], type=pa.string()), counts
+        if bits.shape[0] == 1:
+            codes, inverse = np.unique(bits[0], return_inverse=True)
+            combos = [(int(c),) for c in codes]
+        else:
+            view = np.ascontiguousarray(bits.T).view([("", np.uint64)] * bits.shape[0]).ravel()
+            codes, inverse = np.unique(view, return_inverse=True)
+            combos = [tuple(int(x) for x in c) for c in codes]
+        labels = []
+        per_combo = np.bincount(inverse.ravel(), minlength=len(combos))
+        for combo, count in zip(combos, per_combo):
+            reasons = [r for r, b in self.flag_bits.items() if (combo[b // 64] >> (b % 64)) & 1]
+            labels.append(FLAG_SEPARATOR.join(reasons))
+            for r in reasons:
+                counts[r] = counts.get(r, 0) + int(count)
+        dictionary = pa.array(labels, type=pa.string())
+        arr = pa.DictionaryArray.from_arrays(pa.array(inverse.ravel().astype(np.int32)),
+                                             dictionary)
+        return arr.cast(FLAGS_COLUMN.type), counts
+
+
+def _to_arrow(values, spec, n: int, owner: str) -> pa.Array:
+    try:
+        if isinstance(values, (pa.Array, pa.ChunkedArray)):
+            arr = values
+        elif isinstance(values, np.ma.MaskedArray):
+            arr = pa.array(np.ma.getdata(values), mask=np.ma.getmaskarray(values),
+                           type=spec.type)
+        else:
+            values = np.asarray(values)
+            if values.dtype.kind == "f":
+                arr = pa.array(values, type=spec.type, from_pandas=True)
+            else:
+                arr = pa.array(values, type=spec.type)
+        if arr.type != spec.type:
+            arr = arr.cast(spec.type)
+    except (pa.ArrowInvalid, pa.ArrowTypeError, TypeError, ValueError) as exc:
+        raise PluginError(f"annotator {owner!r}: column {spec.name!r} cannot be "
+                          f"{spec.type}: {exc}") from exc
+    if len(arr) != n:
+        raise PluginError(f"annotator {owner!r}: column {spec.name!r} has {len(arr)} values "
+                          f"for a batch of {n} rows")
+    return arr

@@ -1,0 +1,348 @@
+"""From a job and the catalogue's schema to an ordered, validated plan.
+
+Everything that can be wrong with a job is found here, before a single row is read: unknown
+keys, unknown annotators, missing inputs, output-column clashes, cycles, invalid cosmology.
+The plan is what ``--dry-run`` prints and what every engine executes.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import pyarrow as pa
+
+from .api import Annotator, Setup
+from .columns import FLAGS_COLUMN, ColumnSpec
+from .config import Job
+from .errors import ConfigError, InputError, PlanError
+from .io.readers import Source, expand_inputs, open_reader
+from .registry import RegisteredAnnotator, collect_annotators, get_plugin_manager
+
+
+@dataclass
+class Step:
+    """One configured annotator and how its inputs resolve.
+
+    ``resolve`` maps each logical input to ``("catalogue", column)`` or ``("computed", column)``.
+    """
+
+    annotator: Annotator
+    registered: RegisteredAnnotator
+    resolve: dict[str, tuple[str, str]]
+
+    @property
+    def name(self) -> str:
+        return self.annotator.name
+
+
+@dataclass
+class Plan:
+    job: Job
+    sources: list[Source]
+    catalogue_schema: pa.Schema
+    cosmology: object
+    steps: list[Step]
+    added_columns: list[ColumnSpec]
+    output_schema: pa.Schema
+    flag_reasons: list[tuple[str, str, str]]  # (reason, description, annotator)
+    column_mapping: dict[str, tuple[str, str]]  # logical -> (catalogue column, how)
+    skipped: list[tuple[str, str]] = field(default_factory=list)
+    estimated_rows: int | None = None
+
+    def estimated_output_bytes(self) -> int | None:
+        if self.estimated_rows is None:
+            return None
+        input_bytes = sum(s.size_bytes for s in self.sources)
+        per_row = 0
+        for col in self.added_columns:
+            width = getattr(col.type, "bit_width", 64) // 8 if hasattr(col.type, "bit_width") \
+                else 8
+            per_row += max(width, 1)
+        per_row += 4  # the flags column, mostly empty
+        # Parquet parts compress float columns only a little; count the added columns raw.
+        return int(input_bytes + self.estimated_rows * per_row * 0.9)
+
+    def annotator_records(self) -> list[dict]:
+        return [
+            {
+                "name": s.name,
+                "version": s.annotator.version,
+                "class": s.registered.cls.origin(),
+                "plugin": s.registered.plugin,
+                "distribution": s.registered.distribution,
+                "inputs": {k: v[1] for k, v in s.resolve.items()},
+                "columns": [c.name for c in s.annotator.provides],
+            }
+            for s in self.steps
+        ]
+
+
+def _hints(registered: dict[str, RegisteredAnnotator]) -> dict[str, list[str]]:
+    hints: dict[str, list[str]] = {}
+    for reg in registered.values():
+        for logical, names in reg.cls.input_hints.items():
+            bucket = hints.setdefault(logical, [])
+            bucket.extend(n for n in names if n not in bucket)
+    return hints
+
+
+def _position(reg: RegisteredAnnotator) -> tuple:
+    return (getattr(reg.cls, "position", 100), reg.cls.name)
+
+
+def build_plan(job: Job, pm=None) -> Plan:
+    from .cosmology import Cosmology, CosmologyError
+
+    pm = pm or get_plugin_manager()
+    registered = collect_annotators(pm)
+    ordered = sorted(registered.values(), key=_position)
+
+    # -- job-level keys that plugins claim -------------------------------------------
+    for name in job.annotators:
+        if name not in registered:
+            raise ConfigError(
+                f"[annotators].{name}: no such annotator (known: {', '.join(sorted(registered))})"
+            )
+    claimed = {sec: reg.cls.name for reg in ordered for sec in reg.cls.sections}
+    for sec in job.sections:
+        if sec not in claimed:
+            known = ", ".join(["input", "output", "cosmology", "columns", "annotators",
+                               *sorted(claimed)])
+            raise ConfigError(f"{sec}: unknown top-level key (allowed: {known})")
+    settings = {key for reg in ordered for key in reg.cls.column_settings}
+
+    # -- inputs and cosmology --------------------------------------------------------
+    sources = expand_inputs(job.inputs, job.input_format)
+    readers = [open_reader(s, delimiter=job.delimiter, column_types=job.column_types)
+               for s in sources]
+    schema = readers[0].schema
+    for reader in readers[1:]:
+        if set(reader.schema.names) != set(schema.names):
+            missing = sorted(set(schema.names) ^ set(reader.schema.names))
+            raise InputError(
+                f"input {reader.source.path}: its columns differ from those of "
+                f"{sources[0].path} (differing: {', '.join(missing)})"
+            )
+    try:
+        cosmology = Cosmology.from_dict(job.cosmology)
+    except CosmologyError as exc:
+        raise ConfigError(f"[cosmology]: {exc}") from exc
+    estimates = [r.estimate_rows() for r in readers]
+    estimated_rows = None if any(e is None for e in estimates) else sum(estimates)
+
+    # -- configure each enabled annotator --------------------------------------------
+    configured: list[tuple[Annotator, RegisteredAnnotator]] = []
+    skipped: list[tuple[str, str]] = []
+    for reg in ordered:
+        entry = job.annotators.get(reg.cls.name, {"enabled": None, "options": {}})
+        enabled = entry["enabled"]
+        if enabled is None:
+            enabled = reg.cls.enabled_by_default
+        if not enabled:
+            skipped.append((reg.cls.name, "disabled"))
+            continue
+        setup = Setup(
+            annotator_name=reg.cls.name,
+            options=dict(entry["options"]),
+            sections={s: job.sections[s] for s in reg.cls.sections if s in job.sections},
+            columns=dict(job.columns),
+            catalogue_schema=schema,
+            cosmology=cosmology,
+            base_dir=job.base_dir,
+            explicitly_enabled=entry["enabled"] is True,
+        )
+        instance = reg.cls.configure(setup)
+        if instance is None:
+            if entry["enabled"] is True:
+                raise ConfigError(
+                    f"[annotators].{reg.cls.name}: enabled, but it does not apply to this job "
+                    f"(see its documentation for what it needs)"
+                )
+            skipped.append((reg.cls.name, "not applicable to this job"))
+            continue
+        configured.append((instance, reg))
+
+    # -- who provides what -------------------------------------------------------------
+    providers: dict[str, int] = {}
+    for i, (inst, reg) in enumerate(configured):
+        for col in inst.provides:
+            if col.name in providers:
+                other = configured[providers[col.name]][1]
+                raise PlanError(
+                    f"column {col.name!r} is added by two annotators: {other.cls.name!r} "
+                    f"({other.cls.origin()}) and {reg.cls.name!r} ({reg.cls.origin()}); "
+                    f"disable one in [annotators]"
+                )
+            if col.name in schema.names:
+                raise PlanError(
+                    f"column {col.name!r} of annotator {reg.cls.name!r} already exists in the "
+                    f"catalogue {sources[0].path}; rename that column or disable the annotator"
+                )
+            if col.name == FLAGS_COLUMN.name:
+                raise PlanError(f"annotator {reg.cls.name!r} may not add {FLAGS_COLUMN.name!r}")
+            providers[col.name] = i
+    if FLAGS_COLUMN.name in schema.names:
+        raise PlanError(
+            f"the catalogue {sources[0].path} already has a column {FLAGS_COLUMN.name!r}: "
+            f"is it an annotated output? Annotate the original catalogue instead"
+        )
+    redefiners: dict[str, int] = {}
+    for i, (inst, reg) in enumerate(configured):
+        for logical, column in inst.redefines.items():
+            if logical in redefiners:
+                other = configured[redefiners[logical]][1]
+                raise PlanError(
+                    f"input {logical!r} is redefined by both {other.cls.name!r} and "
+                    f"{reg.cls.name!r}; disable one"
+                )
+            if providers.get(column) != i:
+                raise PlanError(
+                    f"annotator {reg.cls.name!r} redefines {logical!r} as {column!r}, "
+                    f"a column it does not add"
+                )
+            redefiners[logical] = i
+
+    # -- resolve inputs -----------------------------------------------------------------
+    hints = _hints(registered)
+    lower = {n.lower(): n for n in schema.names}
+    mapping: dict[str, tuple[str, str]] = {}
+    used_mappings: set[str] = set()
+
+    def catalogue_column(logical: str, inst: Annotator) -> tuple[str, str] | None:
+        if logical in inst.column_map:
+            col = inst.column_map[logical]
+            how = f"[{inst.name}]"
+        elif logical in job.columns and logical not in settings:
+            col = job.columns[logical]
+            used_mappings.add(logical)
+            if not isinstance(col, str):
+                raise ConfigError(f"[columns].{logical}: expected a column name, got {col!r}")
+            how = "[columns]"
+        else:
+            for cand in [logical, *hints.get(logical, [])]:
+                if cand in schema.names:
+                    return cand, "detected"
+                if cand.lower() in lower:
+                    return lower[cand.lower()], "detected"
+            return None
+        if col not in schema.names:
+            raise ConfigError(
+                f"{how if how != '[columns]' else '[columns].' + logical}: column {col!r} is not "
+                f"in the catalogue {sources[0].path} (columns: {', '.join(schema.names)})"
+            )
+        return col, how
+
+    deps: dict[int, set[int]] = {i: set() for i in range(len(configured))}
+    resolves: list[dict[str, tuple[str, str]]] = []
+    for i, (inst, reg) in enumerate(configured):
+        resolve: dict[str, tuple[str, str]] = {}
+        for logical, required in [(n, True) for n in inst.requires] + \
+                                 [(n, False) for n in inst.optional]:
+            if logical in redefiners and redefiners[logical] != i:
+                j = redefiners[logical]
+                resolve[logical] = ("computed", configured[j][0].redefines[logical])
+                deps[i].add(j)
+                continue
+            if logical in providers and providers[logical] != i:
+                resolve[logical] = ("computed", logical)
+                deps[i].add(providers[logical])
+                continue
+            found = catalogue_column(logical, inst)
+            if found is None:
+                if required:
+                    tried = ", ".join([logical, *hints.get(logical, [])])
+                    raise PlanError(
+                        f"annotator {reg.cls.name!r} needs input {logical!r}, and the catalogue "
+                        f"{sources[0].path} has no such column (tried: {tried}); map it in the "
+                        f"job file: [columns] {logical} = \"<column>\""
+                    )
+                continue
+            col, how = found
+            typ = schema.field(col).type
+            if not (pa.types.is_integer(typ) or pa.types.is_floating(typ)
+                    or pa.types.is_boolean(typ) or pa.types.is_decimal(typ)
+                    or pa.types.is_null(typ)) and logical not in getattr(inst, "text_inputs", ()):
+                raise PlanError(
+                    f"annotator {reg.cls.name!r} needs numbers for input {logical!r}, but "
+                    f"column {col!r} of {sources[0].path} has type {typ}"
+                )
+            resolve[logical] = ("catalogue", col)
+            mapping.setdefault(logical, (col, how))
+        resolves.append(resolve)
+
+    unused = [k for k in job.columns if k not in settings and k not in used_mappings
+              and k not in mapping]
+    if unused:
+        known = sorted({n for inst, _ in configured for n in (*inst.requires, *inst.optional)}
+                       | settings)
+        raise ConfigError(
+            f"[columns].{unused[0]}: no enabled annotator reads an input of that name "
+            f"(inputs and settings: {', '.join(known)})"
+        )
+
+    # -- order: dependencies first, ties by position ------------------------------------
+    order: list[int] = []
+    done: set[int] = set()
+    remaining = list(range(len(configured)))
+    while remaining:
+        ready = [i for i in remaining if deps[i] <= done]
+        if not ready:
+            names = ", ".join(configured[i][1].cls.name for i in remaining)
+            raise PlanError(f"annotators depend on each other in a cycle: {names}")
+        i = ready[0]
+        order.append(i)
+        done.add(i)
+        remaining.remove(i)
+
+    steps = [Step(configured[i][0], configured[i][1], resolves[i]) for i in order]
+    added = [col for s in steps for col in s.annotator.provides]
+    out_fields = list(schema) + [pa.field(c.name, c.type) for c in added] + \
+        [pa.field(FLAGS_COLUMN.name, FLAGS_COLUMN.type)]
+    flag_reasons: list[tuple[str, str, str]] = []
+    seen_flags: set[str] = set()
+    for s in steps:
+        for reason, desc in s.annotator.flags.items():
+            if reason not in seen_flags:
+                seen_flags.add(reason)
+                flag_reasons.append((reason, desc, s.name))
+    return Plan(
+        job=job,
+        sources=sources,
+        catalogue_schema=schema,
+        cosmology=cosmology,
+        steps=steps,
+        added_columns=added,
+        output_schema=pa.schema(out_fields),
+        flag_reasons=flag_reasons,
+        column_mapping=mapping,
+        skipped=skipped,
+        estimated_rows=estimated_rows,
+    )
+
+
+def describe_plan(plan: Plan) -> str:
+    """Human-readable plan, as ``annotator run --dry-run`` prints it."""
+    lines = ["inputs:"]
+    for s in plan.sources:
+        lines.append(f"  {s.path}  ({s.format}, {s.size_bytes / 1e6:.1f} MB)")
+    lines.append("column mapping:")
+    for logical, (col, how) in plan.column_mapping.items():
+        lines.append(f"  {logical:<20} <- {col}  ({how})")
+    c = plan.cosmology
+    lines.append(f"cosmology: {c.to_dict().get('name') or 'custom'}  {c.to_dict()}")
+    lines.append("annotators, in order:")
+    for s in plan.steps:
+        lines.append(f"  {s.name} {s.annotator.version}  [{s.registered.distribution}]")
+        for col in s.annotator.provides:
+            lines.append(f"      + {col.name:<38} {str(col.type):<8} {col.unit or '':<6} "
+                         f"{col.ucd or ''}")
+    for name, why in plan.skipped:
+        lines.append(f"  ({name}: {why})")
+    lines.append(f"      + {FLAGS_COLUMN.name}")
+    rows = plan.estimated_rows
+    size = plan.estimated_output_bytes()
+    lines.append(f"estimated rows: {rows if rows is not None else 'unknown (compressed CSV)'}")
+    if size is not None:
+        lines.append(f"estimated output size: {size / 1e6:.1f} MB")
+    lines.append(f"output: {plan.job.output_dir}")
+    return "\n".join(lines)

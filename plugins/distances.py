@@ -1,0 +1,58 @@
+"""Cosmological distances of each object (Hogg 1999, astro-ph/9905116, eqs. 15-25)."""
+
+from __future__ import annotations
+
+import pyarrow as pa
+
+from annotator import Annotator, ColumnSpec, hookimpl
+
+from ._redshift import REDSHIFT_HINTS, usable_redshift
+
+UCD_DIST = "pos.distance;phys.cosmology"
+
+
+class Distances(Annotator):
+    name = "distances"
+    version = "1.0"
+    summary = "Comoving, transverse comoving, angular-diameter and luminosity distances; " \
+              "distance modulus."
+    position = 10
+    input_hints = {"redshift": REDSHIFT_HINTS}
+    requires = ("redshift",)
+    provides = (
+        ColumnSpec("comoving_distance_mpc", pa.float64(), "Mpc", UCD_DIST,
+                   "Line-of-sight comoving distance D_C."),
+        ColumnSpec("transverse_comoving_distance_mpc", pa.float64(), "Mpc", UCD_DIST,
+                   "Transverse comoving distance D_M (equals D_C in a flat universe)."),
+        ColumnSpec("angular_diameter_distance_mpc", pa.float64(), "Mpc", UCD_DIST,
+                   "Angular-diameter distance D_A = D_M / (1 + z)."),
+        ColumnSpec("luminosity_distance_mpc", pa.float64(), "Mpc", UCD_DIST,
+                   "Luminosity distance D_L = (1 + z) D_M."),
+        ColumnSpec("distance_modulus_mag", pa.float64(), "mag", "phot.mag.distMod",
+                   "Distance modulus 5 log10(D_L / 10 pc)."),
+    )
+
+    def __init__(self, cosmology=None):
+        self.cosmology = cosmology
+
+    @classmethod
+    def configure(cls, setup):
+        setup.reject_unknown_options(())
+        return cls(setup.cosmology)
+
+    def annotate(self, batch):
+        z = usable_redshift(batch.values("redshift"))
+        c = self.cosmology
+        dm = c.transverse_comoving_distance_mpc(z)
+        return {
+            "comoving_distance_mpc": c.comoving_distance_mpc(z),
+            "transverse_comoving_distance_mpc": dm,
+            "angular_diameter_distance_mpc": dm / (1.0 + z),
+            "luminosity_distance_mpc": dm * (1.0 + z),
+            "distance_modulus_mag": c.distance_modulus_mag(z),
+        }
+
+
+@hookimpl
+def register_annotators():
+    return [Distances]
