@@ -1,0 +1,302 @@
+"""Tabulation of one cosmology: integrals on a grid in x = ln a, then the tables.
+
+All work is dimensionless here (distances in c/H0, times in 1/H0); the caller scales
+the tables to Mpc and Gyr.  Grid layout (x = ln a):
+
+* an extension far into the past, [X_PAST - 16, X_PAST], spacing 1/4, that only
+  feeds the integrals (its start carries an analytic power-law tail);
+* the tabulated past, [X_PAST, 0], spacing H = 1/128, X_PAST = -ln(1 + z_max);
+* the future, [0, 8] at spacing H, then blocks of 8 at spacing 1/32 until the
+  horizon integrals have converged (capped at x = 400).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from ._tables import UniformTable, gauss_legendre_intervals, hermite_nonuniform, invert_monotone
+
+H = 1.0 / 128.0  # grid spacing in ln(1+z) of every table in z
+Z_MAX_TARGET = 1.0e10  # tables in z reach at least this redshift
+N_PAST = int(math.ceil(math.log1p(Z_MAX_TARGET) / H))
+U_MAX = N_PAST * H  # ln(1 + z_max_tabulated)
+EXT_WIDTH, EXT_STEP = 16.0, 0.25
+FUT_NEAR, FUT_STEP, FUT_BLOCK, FUT_CAP = 8.0, 1.0 / 32.0, 8.0, 400.0
+GL_ORDER = 8
+R_FLOOR = 1e-13  # the future grid ends where the remaining conformal time is below this
+#                   fraction of the event horizon
+
+
+class Tables:
+    """Integrals and interpolation tables of one background (dimensionless)."""
+
+    def __init__(self, bg):
+        self.bg = bg
+        fate = bg.future_fate()
+        self.has_eh = fate[1]
+        self.finite_future = fate[2]
+        self._integrate()
+        self._z_tables()
+        self._inverse_tables()
+        self._horizon_tables()
+
+    # ------------------------------------------------------------ integration
+    def _g(self, x):
+        """Integrands in x: d eta/dx = 1/(a E), dt/dx = 1/E."""
+        with np.errstate(over="ignore", under="ignore"):
+            half = 0.5 * self.bg.ln_e2(x)
+            return np.exp(-x - half), np.exp(-half)
+
+    def _integrate(self):
+        bg = self.bg
+        x_ext = np.linspace(-U_MAX - EXT_WIDTH, -U_MAX, int(EXT_WIDTH / EXT_STEP) + 1)
+        x_past = -U_MAX + H * np.arange(N_PAST + 1)
+        x_past[-1] = 0.0
+        x_near = H * np.arange(int(FUT_NEAR / H) + 1)
+        past_nodes = np.concatenate([x_ext[:-1], x_past])
+        i0 = len(past_nodes) - 1  # index of x = 0
+        self.i_tab0 = len(x_ext) - 1  # index of x = -U_MAX
+
+        # Past: forward from the far-past tail (eta, t) and backward from today (chi, lookback).
+        d_eta, d_t = gauss_legendre_intervals(past_nodes, self._g, GL_ORDER)
+        x0 = past_nodes[0]
+        ge0, gt0 = self._g(np.array([x0]))
+        p = bg.early_slope(x0)  # E ~ a^-p at the start; p > 1 checked at construction
+        eta_tail = float(ge0[0]) / (p - 1.0)
+        t_tail = float(gt0[0]) / p
+        eta_past = eta_tail + np.concatenate([[0.0], np.cumsum(d_eta)])
+        t_past = t_tail + np.concatenate([[0.0], np.cumsum(d_t)])
+        chi_past = np.concatenate([np.cumsum(d_eta[::-1])[::-1], [0.0]])
+        lb_past = np.concatenate([np.cumsum(d_t[::-1])[::-1], [0.0]])
+        eta0 = eta_past[-1]
+        t0 = t_past[-1]
+        self.eta0, self.t0 = float(eta0), float(t0)
+
+        # Future: blocks until converged.
+        fut = [x_near]
+        d_eta_n, d_t_n = gauss_legendre_intervals(x_near, self._g, GL_ORDER)
+        fut_deta, fut_dt = [d_eta_n], [d_t_n]
+        n_blk = int(FUT_BLOCK / FUT_STEP)
+        while True:
+            x_end = fut[-1][-1]
+            eta_sum = float(sum(np.sum(d) for d in fut_deta))
+            lne2, sl = bg.ln_e2(np.array([x_end]), slope=True)
+            g_end = float(self._g(np.array([x_end]))[0][0])
+            rate = 1.0 + 0.5 * float(sl[0])  # d eta/dx ~ exp(-rate x)
+            if self.has_eh:
+                if rate > 0.0 and g_end / rate <= R_FLOOR * eta_sum:
+                    break
+            elif eta_sum >= 1.05 * eta0:
+                break
+            if x_end >= FUT_CAP:
+                break
+            blk = x_end + FUT_STEP * np.arange(n_blk + 1)
+            fut.append(blk[1:])
+            d_eta_b, d_t_b = gauss_legendre_intervals(blk, self._g, GL_ORDER)
+            fut_deta.append(d_eta_b)
+            fut_dt.append(d_t_b)
+        x_fut = np.concatenate(fut)
+        d_eta_f = np.concatenate(fut_deta)
+        d_t_f = np.concatenate(fut_dt)
+        eta_fut = eta0 + np.concatenate([[0.0], np.cumsum(d_eta_f)])
+        t_fut = t0 + np.concatenate([[0.0], np.cumsum(d_t_f)])
+        x_end = float(x_fut[-1])
+        lne2_end, sl_end = bg.ln_e2(np.array([x_end]), slope=True)
+        g_eta_end, g_t_end = (float(v[0]) for v in self._g(np.array([x_end])))
+
+        # Whole grid.
+        self.x = np.concatenate([past_nodes, x_fut[1:]])
+        self.i0 = i0
+        self.eta = np.concatenate([eta_past, eta_fut[1:]])
+        self.t = np.concatenate([t_past, t_fut[1:]])
+        self.chi_past = chi_past
+        self.lb_past = lb_past
+        lne2_all, sl_all = bg.ln_e2(self.x, slope=True)
+        self.ln_e2 = lne2_all
+        self.slope = sl_all  # d ln E^2 / dx
+        self.g_eta = np.exp(-self.x - 0.5 * lne2_all)
+        self.g_t = np.exp(-0.5 * lne2_all)
+        self.x_end = x_end
+
+        # Remaining conformal time R(x) = eta_inf - eta(x) (event horizon at x).
+        if self.has_eh:
+            rate = 1.0 + 0.5 * float(sl_end[0])
+            r_tail = g_eta_end / rate if rate > 0 else 0.0
+            d_all = np.concatenate([d_eta, d_eta_f])
+            self.R = r_tail + np.concatenate([np.cumsum(d_all[::-1])[::-1], [0.0]])
+            self.R0 = float(self.R[i0])
+            self.eta_inf = self.eta0 + self.R0
+        else:
+            self.R = None
+            self.R0 = math.inf
+            self.eta_inf = math.inf
+        if self.finite_future:
+            pf = 0.5 * float(sl_end[0])  # E ~ a^pf, pf > 0
+            self.t_end = float(self.t[-1]) + (g_t_end / pf if pf > 0 else 0.0)
+        else:
+            self.t_end = math.inf
+
+    # --------------------------------------------------------------- z tables
+    def _z_tables(self):
+        bg = self.bg
+        sl = slice(self.i_tab0, self.i0 + 1)
+        x = self.x[sl][::-1]  # u = -x increasing from 0
+        u = -x
+        u[0] = 0.0
+        lne = 0.5 * self.ln_e2[sl][::-1]
+        dlne = -0.5 * self.slope[sl][::-1]  # d ln E / du
+        e = np.exp(lne)
+        chi = self.chi_past[sl][::-1].copy()
+        chi[0] = 0.0
+        dchi = np.exp(u - lne)  # d chi / du = (1+z)/E
+        t = self.t[sl][::-1]
+        lb = self.lb_past[sl][::-1].copy()
+        lb[0] = 0.0
+        self.u_nodes = u
+        self.z_max = float(math.expm1(U_MAX))
+
+        T = {}
+        T["ln_e"] = UniformTable(0.0, H, lne, dlne)
+        T["chi"] = UniformTable(0.0, H, chi, dchi)
+        T["lookback"] = UniformTable(0.0, H, lb, 1.0 / e)
+        T["ln_age"] = UniformTable(0.0, H, np.log(t), -1.0 / (e * t))
+        T["ln_dchi_dz"] = UniformTable(0.0, H, -lne, -dlne)
+        T["ln_dt_dz"] = UniformTable(0.0, H, -lne - u, -dlne - 1.0)
+
+        ok = bg.omega_k
+        sq = math.sqrt(abs(ok))
+        y = sq * chi
+        if ok > 0:
+            dm, cosn = np.sinh(y) / sq, np.cosh(y)
+        elif ok < 0:
+            dm, cosn = np.sin(y) / sq, np.cos(y)
+        else:
+            dm, cosn = chi, np.ones_like(chi)
+        ddm = cosn * dchi
+        T["dm"] = UniformTable(0.0, H, dm, ddm)
+        T["da"] = UniformTable(0.0, H, dm * np.exp(-u), (ddm - dm) * np.exp(-u))
+        T["dl"] = UniformTable(0.0, H, dm * np.exp(u), (ddm + dm) * np.exp(u))
+        m = cosn / e
+        T["ddm_dz"] = UniformTable(0.0, H, m, ok * dm * dchi / e - m * dlne)
+        # Comoving volume: tabulate g = (3 V / 4 pi)^(1/3), smooth and ~chi near z = 0.
+        g = _volume_root(chi, ok)
+        dg = np.empty_like(g)
+        dg[1:] = (dm[1:] / g[1:]) ** 2 * dchi[1:]
+        dg[0] = dchi[0]
+        T["vol_root"] = UniformTable(0.0, H, g, dg)
+        # dV/dz/dOmega = D_M^2 / E: tabulate its square root.
+        rs = np.exp(-0.5 * lne)
+        q = dm * rs
+        T["dvol_root"] = UniformTable(0.0, H, q, ddm * rs - 0.5 * q * dlne)
+        # Recession velocity at emission, chi E / (1+z), in units of c.
+        ve = chi * e * np.exp(-u)
+        T["v_emit"] = UniformTable(0.0, H, ve, 1.0 + ve * (dlne - 1.0))
+        self.T = T
+        # For the derived constants.
+        self.chi_max = float(chi[-1])
+
+    # -------------------------------------------------------- inverse tables
+    def _inverse_tables(self):
+        # Nodes: whole past (with extension), ln eta and ln t increasing in x.
+        xs = self.x[: self.i0 + 1]
+        eta = self.eta[: self.i0 + 1]
+        t = self.t[: self.i0 + 1]
+        self._ln_eta = (xs, np.log(eta), self.g_eta[: self.i0 + 1] / eta)
+        self._ln_t = (self.x, np.log(self.t), self.g_t / self.t)
+        # z at comoving distance: variable v = -ln(eta_emit / eta0) = -ln(1 - chi/eta0).
+        i_tab0 = self.i_tab0
+        v_max = -math.log(eta[i_tab0] / self.eta0)
+        n = int(math.floor(v_max / H))
+        v = H * np.arange(n + 1)
+        xv = invert_monotone(*self._ln_eta, math.log(self.eta0) - v)
+        xv[0] = 0.0
+        lne2, _ = self.bg.ln_e2(xv, slope=True)
+        e = np.exp(0.5 * lne2)
+        eta_v = self.eta0 * np.exp(-v)
+        self.T_inv_chi = UniformTable(0.0, H, -xv, np.exp(xv) * e * eta_v)
+        # z at age / lookback: variable w = -ln(t_emit / t0).
+        w_max = -math.log(t[i_tab0] / self.t0)
+        n = int(math.floor(w_max / H))
+        w = H * np.arange(n + 1)
+        xw = invert_monotone(xs, np.log(t), self.g_t[: self.i0 + 1] / t, math.log(self.t0) - w)
+        xw[0] = 0.0
+        lne2, _ = self.bg.ln_e2(xw, slope=True)
+        e = np.exp(0.5 * lne2)
+        self.T_inv_t = UniformTable(0.0, H, -xw, e * self.t0 * np.exp(-w))
+
+    def redshift_where_chi(self, chi):
+        """Scalar: z with D_C(z) = chi (dimensionless), or None beyond the grid."""
+        target = self.eta0 - chi
+        xs, f, df = self._ln_eta
+        if not target > math.exp(f[0]):
+            return None
+        xv = float(invert_monotone(xs, f, df, np.array([math.log(target)]))[0])
+        return float(math.expm1(-xv))
+
+    # ------------------------------------------------------- horizon tables
+    def _horizon_tables(self):
+        bg = self.bg
+        self.T_cross = None
+        self.T_arrive_eta = None
+        if self.has_eh:
+            ok = self.R > 1e-3 * R_FLOOR * self.R0
+            xs = self.x[ok]
+            lnr = np.log(self.R[ok])
+            dlnr = self.g_eta[ok] / self.R[ok]  # d(-ln R)/dx
+            s_lo = max(float(lnr[-1]), math.log(R_FLOOR * self.R0))
+            s_hi = math.log(self.eta0)
+            n = int(math.ceil((s_hi - s_lo) / H))
+            s = s_hi - H * np.arange(n + 1)[::-1]  # increasing, ends at s_hi
+            s = s[s >= s_lo] if s[0] < s_lo else s
+            xs_s = invert_monotone(xs, -lnr, dlnr, -s)
+            lnt, dlnt = hermite_nonuniform(*self._ln_t, xs_s)
+            tt = np.exp(lnt)
+            dt_ds = -np.exp(xs_s + s)  # dt/ds = -a R
+            self.T_cross = UniformTable(float(s[0]), H, tt, dt_ds)
+            self.s_lo = float(s[0])
+        else:
+            # Signal arrival without an event horizon: t at eta = eta0 + q, q uniform.
+            xf = self.x[self.i0:]
+            eta_f = self.eta[self.i0:]
+            q_max = min(self.chi_max, float(eta_f[-1]) - self.eta0)
+            n = 4096
+            hq = q_max / n
+            q = hq * np.arange(n + 1)
+            xq = invert_monotone(xf, eta_f, self.g_eta[self.i0:], self.eta0 + q)
+            xq[0] = 0.0
+            lnt, _ = hermite_nonuniform(*self._ln_t, xq)
+            tt = np.exp(lnt)
+            tt[0] = self.t0
+            self.T_arrive_eta = UniformTable(0.0, hq, tt, np.exp(xq))
+
+
+def _volume_root(chi, ok):
+    """(3 V / (4 pi))^(1/3) for comoving distance chi (units c/H0), curvature ok.
+
+    V = 4 pi int_0^chi D_M^2 dchi (Hogg 1999 eq. 29 in integral form, valid past the
+    equator of a closed space), so 3V/(4 pi) = 3 F(y) / |ok|^(3/2), y = sqrt|ok| chi,
+    F = (sinh y cosh y - y)/2 (open) or (y - sin y cos y)/2 (closed).
+    """
+    if ok == 0:
+        return chi.copy()
+    sq = math.sqrt(abs(ok))
+    y = sq * chi
+    sign = 1.0 if ok > 0 else -1.0
+    with np.errstate(over="ignore"):
+        if ok > 0:
+            three_f = 1.5 * (np.sinh(y) * np.cosh(y) - y)
+        else:
+            three_f = 1.5 * (y - np.sin(y) * np.cos(y))
+    # Series for small y: 3F = (3/4) sum_k (+-1)^(k+1) (2y)^(2k+1) / (2k+1)!
+    small = y < 0.05
+    if np.any(small):
+        ys = 2.0 * y[small]
+        ser = np.zeros_like(ys)
+        fact = 1.0
+        for kk in range(1, 7):
+            fact *= (2 * kk) * (2 * kk + 1)
+            ser += sign ** (kk + 1) * ys ** (2 * kk + 1) / fact
+        three_f[small] = 0.75 * ser
+    return np.cbrt(three_f) / sq
