@@ -1,0 +1,402 @@
+"""The Dask engine: the same job on a Dask cluster, with results identical to the local engine.
+
+How a run is cut into work
+--------------------------
+One Dask task per chunk, and the task body is :func:`annotator.engines.common.process_chunk`,
+the very function the local engine's stages amount to (annotate one chunk with the job's
+:class:`~annotator.pipeline.Pipeline`, then commit its part and its rejected rows atomically).
+So a part written on a worker has the same name (``part-SSSSS-CCCCCC.parquet``), the same rows,
+the same bytes and the same VOParquet metadata as the part the local engine writes, and the
+task returns the same checkpoint record, which the driver appends to
+``_state/checkpoint.jsonl`` as results arrive. ``--resume`` therefore works across engines:
+a run started locally can be finished on a cluster and the other way round.
+
+* **Parquet** sources are read *on the workers*: a task carries only a descriptor
+  (source, chunk index, rows per chunk), and the worker reads rows
+  ``[k * chunk_rows, (k + 1) * chunk_rows)`` itself through the same
+  :meth:`ParquetReader.chunks` the local engine uses (``start_chunk=k``, first chunk taken),
+  touching only the row groups those rows live in. The driver reads nothing but footers.
+* **CSV** sources cannot be cut at row ``k * chunk_rows`` without parsing everything before it:
+  which lines are set aside (and so where chunk ``k`` begins) is only known after parsing.
+  The driver therefore streams a CSV through the same :class:`CsvReader` (one thread, ahead of
+  the submissions) and ships each parsed chunk (an Arrow table plus its rejected rows) to a
+  worker, which annotates and commits it. CSV throughput is bounded by the driver's parsing;
+  convert very large CSV catalogues to Parquet once before a cluster run.
+
+Why futures (``client.submit``) over chunk descriptors rather than a ``dask.dataframe``
+---------------------------------------------------------------------------------------
+A partition here has an identity that must survive: the part file of chunk ``k`` of source ``s``
+is ``part-s-k``, is committed on its own and is recorded in the checkpoint as it lands.
+``dask.dataframe`` would route every partition through pandas (Arrow string, dictionary and
+nullable types do not round-trip unchanged, so bit-for-bit identity would be at risk), its
+``to_parquet`` names and annotates files its own way, and a dataframe graph hands results back
+all at once rather than part by part. A future per chunk keeps the part identity, lets the driver
+record each commit as it completes (``as_completed``) and keeps the amount of work queued on the
+scheduler bounded. The output schema is explicit: the pipeline carries ``plan.output_schema`` and
+builds every table with it; nothing is inferred from a sample partition.
+
+Shared context
+--------------
+The pipeline (configured annotators and their cosmology) pickles small: the cosmology drops its
+tables when pickled. It is scattered once to every worker (``broadcast=True``); each worker
+process then holds one copy, whose tables are built on its first chunk and reused for every
+later chunk. Tasks are module-level functions with plain arguments (no locks, loggers or file
+handles travel).
+
+The output folder (and, for Parquet, the inputs) must be visible at the same path on the driver
+and on every worker (a shared filesystem); a check on each worker says so before any work starts.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import pickle
+import socket
+import threading
+import time
+import uuid
+from collections.abc import Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass
+from pathlib import Path
+
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from .. import __version__
+from ..errors import ConfigError, InputError, OutputError, UserError
+from ..io.readers import Chunk, ParquetReader, Source, open_reader
+from ..pipeline import Pipeline
+from ..provenance import file_sha256, now_iso, part_metadata
+from .common import Progress, committed_chunks, finish, prepare_output, process_chunk
+from .local import _prefetch
+
+#: How long to wait for workers to join an existing cluster (batch queues can be slow).
+WORKER_WAIT_S = 300.0
+#: Seconds to wait for the scheduler to answer.
+CONNECT_TIMEOUT_S = 30.0
+#: Tasks kept queued per worker thread: enough that no worker waits for the driver, few enough
+#: that a 10^10-row job never puts tens of thousands of tasks (or, for CSV, chunks) in flight.
+TASKS_PER_THREAD = 2
+
+# Counters of this process when it is a worker: how many pipelines it prepared (built tables
+# for) and how many chunks it committed. ``worker_stats`` reads them, e.g. through
+# ``client.run(worker_stats)``; a pipeline prepared once per worker, not once per chunk, shows
+# there.
+_worker_counts = {"pipelines_prepared": 0, "chunks_committed": 0}
+
+
+# --------------------------------------------------------------------- worker side
+
+@dataclass(frozen=True)
+class ParquetChunkTask:
+    """Chunk ``index`` of a Parquet source: what a worker needs to read it by itself."""
+
+    source: Source
+    index: int
+    chunk_rows: int
+    target: pa.Schema
+
+    def read(self) -> Chunk:
+        return read_parquet_chunk(self.source, self.index, self.chunk_rows, self.target)
+
+
+def read_parquet_chunk(source: Source, index: int, chunk_rows: int,
+                       target: pa.Schema | None = None) -> Chunk:
+    """Chunk ``index`` of a Parquet source, read on its own (rows from ``index * chunk_rows``).
+
+    It is the chunk the sequential reader yields at position ``index``: the same reader code,
+    started there.
+    """
+    if not Path(source.path).is_file():
+        raise InputError(f"input {source.path}: not visible on host {socket.gethostname()} "
+                         f"(the Dask engine needs the inputs on a filesystem every worker sees)")
+    chunks = ParquetReader(source).chunks(chunk_rows, start_chunk=index, target=target)
+    try:
+        chunk = next(chunks, None)
+    finally:
+        chunks.close()
+    if chunk is None or chunk.index != index:
+        raise InputError(f"input {source.path}: has no rows from row {index * chunk_rows} "
+                         f"(chunk {index}); did the file change after the run was planned?")
+    return chunk
+
+
+def annotate_and_commit(pipeline: Pipeline, work: Chunk | ParquetChunkTask, output_dir: str,
+                        compression: str) -> dict:
+    """The task body: read the chunk if only its descriptor came, then ``process_chunk``.
+
+    :return: the checkpoint record of the committed part.
+    """
+    out = Path(output_dir)
+    if not out.is_dir():
+        raise OutputError(f"output {out}: not visible on host {socket.gethostname()} (the Dask "
+                          f"engine needs the output folder on a filesystem every worker sees)")
+    chunk = work.read() if isinstance(work, ParquetChunkTask) else work
+    if not pipeline._prepared:
+        _worker_counts["pipelines_prepared"] += 1
+    record = process_chunk(pipeline, chunk, out, compression)
+    _worker_counts["chunks_committed"] += 1
+    return record
+
+
+def worker_stats() -> dict:
+    """This process's counters (see ``_worker_counts``) and its peak resident memory."""
+    import resource
+
+    peak_kib = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    return dict(_worker_counts, pid=os.getpid(), peak_rss_mib=round(peak_kib / 1024.0, 1))
+
+
+def reset_worker_stats() -> None:
+    for key in _worker_counts:
+        _worker_counts[key] = 0
+
+
+def _worker_check(pipeline_blob: bytes, output_dir: str, inputs: list[str]) -> dict:
+    """Run on each worker before any work: can it load the job's code and see the files?"""
+    problem = None
+    try:
+        pickle.loads(pipeline_blob)
+    except Exception as exc:  # a plugin or a dependency missing on the worker
+        problem = (f"cannot load the job's annotators ({type(exc).__name__}: {exc}); install "
+                   f"the same annotator and plugin packages on every worker")
+    if problem is None and not Path(output_dir).is_dir():
+        problem = (f"cannot see the output folder {output_dir} (it must be on a filesystem "
+                   f"shared by the driver and every worker)")
+    if problem is None and not os.access(output_dir, os.W_OK):
+        problem = f"cannot write to the output folder {output_dir}"
+    if problem is None:
+        for path in inputs:
+            if not Path(path).is_file():
+                problem = (f"cannot see input {path} (it must be on a filesystem shared by the "
+                           f"driver and every worker)")
+                break
+    return {"annotator": __version__, "host": socket.gethostname(), "problem": problem}
+
+
+# --------------------------------------------------------------------- driver side
+
+def _parquet_chunk_count(source: Source, chunk_rows: int) -> int:
+    try:
+        rows = pq.ParquetFile(source.path).metadata.num_rows
+    except Exception as exc:
+        raise InputError(f"input {source.path}: not a readable Parquet file: {exc}") from exc
+    return math.ceil(rows / chunk_rows)
+
+
+def pending_work(plan, done: dict[int, set[int]]) -> Iterator[Chunk | ParquetChunkTask]:
+    """Every chunk not yet committed, source by source, in order: descriptors for Parquet
+    (read on the workers), parsed chunks for CSV (read here)."""
+    job = plan.job
+    for source in plan.sources:
+        skip = done.get(source.index, set())
+        if source.format == "parquet":
+            for k in range(_parquet_chunk_count(source, job.chunk_rows)):
+                if k not in skip:
+                    yield ParquetChunkTask(source, k, job.chunk_rows, plan.catalogue_schema)
+            continue
+        reader = open_reader(source, delimiter=job.delimiter, column_types=job.column_types)
+        start = 0
+        while start in skip:
+            start += 1
+        for chunk in reader.chunks(job.chunk_rows, start_chunk=start,
+                                   target=plan.catalogue_schema):
+            if chunk.index not in skip:
+                yield chunk
+
+
+def _work_ids(work: Chunk | ParquetChunkTask) -> tuple[int, int]:
+    return work.source.index, work.index
+
+
+def _import_distributed():
+    try:
+        import distributed
+    except ImportError as exc:  # the optional extra is not installed
+        raise ConfigError("--engine dask: the Dask packages are not installed "
+                          "(pip install 'annotator[dask]')") from exc
+    return distributed
+
+
+@contextmanager
+def connect(scheduler: str | None = None, workers: int | None = None):
+    """A ``distributed.Client``: on the cluster at ``scheduler`` (an address such as
+    ``tcp://host:8786``, or a scheduler file ``*.json``), or on a new local cluster of
+    ``workers`` processes with one thread each. A cluster started here is closed on exit."""
+    distributed = _import_distributed()
+    if workers is not None and workers < 1:
+        raise ConfigError(f"--workers: {workers} is not a number of workers (give 1 or more)")
+    if scheduler is None:
+        n = workers or os.cpu_count() or 1
+        cluster = distributed.LocalCluster(n_workers=n, processes=True, threads_per_worker=1,
+                                           dashboard_address=":0")
+        try:
+            with distributed.Client(cluster) as client:
+                yield client
+        finally:
+            cluster.close()
+        return
+    try:
+        if scheduler.endswith(".json"):
+            if not Path(scheduler).is_file():
+                raise ConfigError(f"--scheduler {scheduler}: no such scheduler file")
+            client = distributed.Client(scheduler_file=scheduler, timeout=CONNECT_TIMEOUT_S)
+        else:
+            client = distributed.Client(scheduler, timeout=CONNECT_TIMEOUT_S)
+    except UserError:
+        raise
+    except (OSError, TimeoutError, ValueError, TypeError) as exc:
+        raise ConfigError(f"--scheduler {scheduler}: cannot connect to a Dask scheduler there "
+                          f"({type(exc).__name__}: {exc})") from exc
+    try:
+        wanted = workers or 1
+        try:
+            client.wait_for_workers(wanted, timeout=WORKER_WAIT_S)
+        except TimeoutError as exc:
+            have = len(client.scheduler_info(n_workers=-1).get("workers", {}))
+            raise ConfigError(f"--scheduler {scheduler}: {have} worker(s) connected, "
+                              f"{wanted} wanted, after waiting {WORKER_WAIT_S:.0f} s") from exc
+        yield client
+    finally:
+        client.close()
+
+
+def _check_workers(client, pipeline: Pipeline, plan, output_dir: Path) -> None:
+    inputs = [str(s.path) for s in plan.sources if s.format == "parquet"]
+    try:
+        answers = client.run(_worker_check, pickle.dumps(pipeline), str(output_dir), inputs)
+    except Exception as exc:
+        raise ConfigError(f"--engine dask: the workers cannot run annotator's code "
+                          f"({type(exc).__name__}: {exc}); install the same annotator and "
+                          f"plugin packages on every worker") from exc
+    for address, answer in sorted(answers.items()):
+        if answer["problem"]:
+            raise ConfigError(f"Dask worker {address} on {answer['host']}: {answer['problem']}")
+        if answer["annotator"] != __version__:
+            raise ConfigError(f"Dask worker {address} on {answer['host']}: runs annotator "
+                              f"{answer['annotator']}, this driver {__version__}; the results "
+                              f"would not be those of one version (install the same everywhere)")
+
+
+class _RecordsInOrder:
+    """The checkpoint log, its records read in (source, chunk) order.
+
+    Workers commit parts in whatever order they finish; the manifest lists them in the order
+    the local engine commits them, so the two manifests are the same."""
+
+    def __init__(self, log):
+        self._log = log
+
+    def records(self) -> list[dict]:
+        return sorted(self._log.records(), key=lambda r: (r["source"], r["chunk"]))
+
+    def append(self, record: dict) -> None:
+        self._log.append(record)
+
+
+def _died_error(exc: Exception, key: str) -> UserError:
+    part = key.split("-part-", 1)[-1]
+    return ConfigError(f"--engine dask: the workers running part {part} died repeatedly "
+                       f"({exc}); most often a worker runs out of memory: give each worker "
+                       f"more memory or lower [output].chunk_rows. Committed parts are kept; "
+                       f"rerun with --resume")
+
+
+def run_dask(plan, *, progress=None, resume: bool = False, scheduler: str | None = None,
+             workers: int | None = None, cancel: threading.Event | None = None) -> dict:
+    """Run a plan on a Dask cluster; return the manifest (engine ``"dask"``).
+
+    :param scheduler: address (or scheduler file) of an existing cluster; without one a local
+        cluster of ``workers`` processes (default: one per CPU) is started and closed again.
+    :param workers: with ``scheduler``, how many workers to wait for before starting.
+    :param progress: called with a :class:`Progress` after each committed part.
+    :param resume: keep the parts a previous run of the same job committed, on any engine.
+    :param cancel: a ``threading.Event``; when set, no new chunk is started.
+    """
+    distributed = _import_distributed()
+    job = plan.job
+    started_at, t0 = now_iso(), time.perf_counter()
+    with connect(scheduler, workers) as client:
+        log = prepare_output(plan, resume=resume)
+        out = Path(job.output_dir).resolve()
+        metadata = part_metadata(plan)
+        pipeline = Pipeline.from_plan(plan, metadata)
+        _check_workers(client, pipeline, plan, out)
+        records = log.records()
+        done = committed_chunks(records)
+        rows_done = sum(r["rows_read"] for r in records)
+        parts_done = len(records)
+        run_id = uuid.uuid4().hex[:12]
+        shared = client.scatter(pipeline, broadcast=True, hash=False)
+        sums = {str(s.path): client.submit(file_sha256, s.path, key=f"annotator-{run_id}-sha256-"
+                                           f"{s.index:05d}", pure=False)
+                for s in plan.sources}
+        threads = max(sum(client.nthreads().values()), 1)
+        window = TASKS_PER_THREAD * threads
+        work = pending_work(plan, done)
+        if any(s.format != "parquet" for s in plan.sources):
+            work = _prefetch(work, depth=window)  # parse CSV ahead while the driver waits
+        finished = distributed.as_completed()
+        in_flight: dict[str, object] = {}
+        exhausted = False
+
+        def top_up() -> None:
+            nonlocal exhausted
+            while not exhausted and len(in_flight) < window:
+                if cancel is not None and cancel.is_set():
+                    exhausted = True
+                    return
+                item = next(work, None)
+                if item is None:
+                    exhausted = True
+                    return
+                s, k = _work_ids(item)
+                future = client.submit(annotate_and_commit, shared, item, str(out),
+                                       job.compression, key=f"annotator-{run_id}-part-"
+                                       f"{s:05d}-{k:06d}", pure=False)
+                in_flight[future.key] = future
+                finished.add(future)
+
+        try:
+            top_up()
+            for future in finished:
+                in_flight.pop(future.key, None)
+                try:
+                    record = future.result()
+                except distributed.KilledWorker as exc:
+                    raise _died_error(exc, str(future.key)) from exc
+                log.append(record)
+                rows_done += record["rows_read"]
+                parts_done += 1
+                if progress is not None:
+                    progress(Progress(rows_done, plan.estimated_rows, parts_done,
+                                      time.perf_counter() - t0))
+                top_up()
+        except BaseException:
+            # Record what is already committed, so --resume redoes as little as possible;
+            # tasks still running may commit their part too, which resume rewrites identically.
+            for future in list(in_flight.values()):
+                if future.status == "finished":
+                    try:
+                        log.append(future.result())
+                    except Exception:
+                        pass
+                else:
+                    future.cancel()
+            for future in sums.values():
+                future.cancel()
+            raise
+        finally:
+            if hasattr(work, "close"):
+                work.close()
+        if cancel is not None and cancel.is_set():
+            for future in sums.values():
+                future.cancel()
+            raise UserError("run cancelled")
+        checksums = {path: future.result() for path, future in sums.items()}
+        del shared
+    return finish(plan, _RecordsInOrder(log), started_at=started_at,
+                  elapsed_s=time.perf_counter() - t0, engine="dask", checksums=checksums,
+                  metadata=metadata)
