@@ -133,3 +133,22 @@ def test_empty_csv_is_refused(tmp_path):
     path.write_text("")
     with pytest.raises(InputError, match="empty.csv"):
         CsvReader(_source(path))
+
+
+def test_parquet_reading_does_not_accumulate_memory(tmp_path):
+    # Regression: with pyarrow's default pre_buffer, every row group read so far stayed
+    # allocated while iter_batches ran, so memory grew with the file.
+    n_groups, rows = 40, 20_000
+    path = tmp_path / "long.parquet"
+    table = pa.table({f"c{i}": np.random.default_rng(i).random(rows) for i in range(8)})
+    with pq.ParquetWriter(path, table.schema) as w:
+        for _ in range(n_groups):
+            w.write_table(table)
+    reader = ParquetReader(_source(path))
+    allocated = []
+    for chunk in reader.chunks(rows):
+        allocated.append(pa.total_allocated_bytes())
+        del chunk
+    assert len(allocated) == n_groups
+    one_chunk = table.nbytes
+    assert allocated[-1] - allocated[4] < 3 * one_chunk
