@@ -158,9 +158,11 @@ class Tables:
         self.z_max = float(math.expm1(U_MAX))
 
         T = {}
+        # Quantities that vanish at z = 0 are tabulated as f(u)/u (marked "/u"), which
+        # keeps the interpolation error relative even in the first intervals.
         T["ln_e"] = UniformTable(0.0, H, lne, dlne)
-        T["chi"] = UniformTable(0.0, H, chi, dchi)
-        T["lookback"] = UniformTable(0.0, H, lb, 1.0 / e)
+        T["chi/u"] = _over_u(u, chi, dchi)
+        T["lookback/u"] = _over_u(u, lb, 1.0 / e)
         T["ln_age"] = UniformTable(0.0, H, np.log(t), -1.0 / (e * t))
         T["ln_dchi_dz"] = UniformTable(0.0, H, -lne, -dlne)
         T["ln_dt_dz"] = UniformTable(0.0, H, -lne - u, -dlne - 1.0)
@@ -175,9 +177,9 @@ class Tables:
         else:
             dm, cosn = chi, np.ones_like(chi)
         ddm = cosn * dchi
-        T["dm"] = UniformTable(0.0, H, dm, ddm)
-        T["da"] = UniformTable(0.0, H, dm * np.exp(-u), (ddm - dm) * np.exp(-u))
-        T["dl"] = UniformTable(0.0, H, dm * np.exp(u), (ddm + dm) * np.exp(u))
+        T["dm/u"] = _over_u(u, dm, ddm)
+        T["da/u"] = _over_u(u, dm * np.exp(-u), (ddm - dm) * np.exp(-u))
+        T["dl/u"] = _over_u(u, dm * np.exp(u), (ddm + dm) * np.exp(u))
         m = cosn / e
         T["ddm_dz"] = UniformTable(0.0, H, m, ok * dm * dchi / e - m * dlne)
         # Comoving volume: tabulate g = (3 V / 4 pi)^(1/3), smooth and ~chi near z = 0.
@@ -185,14 +187,14 @@ class Tables:
         dg = np.empty_like(g)
         dg[1:] = (dm[1:] / g[1:]) ** 2 * dchi[1:]
         dg[0] = dchi[0]
-        T["vol_root"] = UniformTable(0.0, H, g, dg)
+        T["vol_root/u"] = _over_u(u, g, dg)
         # dV/dz/dOmega = D_M^2 / E: tabulate its square root.
         rs = np.exp(-0.5 * lne)
         q = dm * rs
-        T["dvol_root"] = UniformTable(0.0, H, q, ddm * rs - 0.5 * q * dlne)
+        T["dvol_root/u"] = _over_u(u, q, ddm * rs - 0.5 * q * dlne)
         # Recession velocity at emission, chi E / (1+z), in units of c.
         ve = chi * e * np.exp(-u)
-        T["v_emit"] = UniformTable(0.0, H, ve, 1.0 + ve * (dlne - 1.0))
+        T["v_emit/u"] = _over_u(u, ve, 1.0 + ve * (dlne - 1.0))
         self.T = T
         # For the derived constants.
         self.chi_max = float(chi[-1])
@@ -241,21 +243,26 @@ class Tables:
         self.T_cross = None
         self.T_arrive_eta = None
         if self.has_eh:
+            # Variable tau = ln(eta / R): elapsed over remaining conformal time.  It is
+            # asymptotically linear in ln a both near the big bang and in the far
+            # future, so ln t(tau) is smooth everywhere.  Crossing: R = chi, eta =
+            # eta_inf - chi; arrival: R = R0 - chi, eta = eta0 + chi.
             ok = self.R > 1e-3 * R_FLOOR * self.R0
             xs = self.x[ok]
-            lnr = np.log(self.R[ok])
-            dlnr = self.g_eta[ok] / self.R[ok]  # d(-ln R)/dx
-            s_lo = max(float(lnr[-1]), math.log(R_FLOOR * self.R0))
-            s_hi = math.log(self.eta0)
-            n = int(math.ceil((s_hi - s_lo) / H))
-            s = s_hi - H * np.arange(n + 1)[::-1]  # increasing, ends at s_hi
-            s = s[s >= s_lo] if s[0] < s_lo else s
-            xs_s = invert_monotone(xs, -lnr, dlnr, -s)
-            lnt, dlnt = hermite_nonuniform(*self._ln_t, xs_s)
-            tt = np.exp(lnt)
-            dt_ds = -np.exp(xs_s + s)  # dt/ds = -a R
-            self.T_cross = UniformTable(float(s[0]), H, tt, dt_ds)
-            self.s_lo = float(s[0])
+            r, eta, g = self.R[ok], self.eta[ok], self.g_eta[ok]
+            f = np.log(eta) - np.log(r)  # tau(x), increasing
+            df = g * (1.0 / eta + 1.0 / r)
+            tau_lo = math.log(self.R0 / self.eta0)  # at R = eta0 (chi can not exceed eta0)
+            tau_hi = min(float(f[-1]), math.log(self.eta_inf / (R_FLOOR * self.R0)))
+            n = int(math.floor((tau_hi - tau_lo) / H))
+            tau = tau_lo + H * np.arange(n + 1)
+            xs_s = invert_monotone(xs, f, df, tau)
+            lnt, _ = hermite_nonuniform(*self._ln_t, xs_s)
+            # dt/dtau = a R eta / eta_inf, with R = eta_inf / (1 + e^tau)
+            r_s = self.eta_inf / (1.0 + np.exp(tau))
+            eta_s = self.eta_inf - r_s
+            dlnt = np.exp(xs_s - lnt) * r_s * eta_s / self.eta_inf
+            self.T_cross = UniformTable(tau_lo, H, lnt, dlnt)
         else:
             # Signal arrival without an event horizon: t at eta = eta0 + q, q uniform.
             xf = self.x[self.i0:]
@@ -270,6 +277,23 @@ class Tables:
             tt = np.exp(lnt)
             tt[0] = self.t0
             self.T_arrive_eta = UniformTable(0.0, hq, tt, np.exp(xq))
+
+
+def _over_u(u, f, df):
+    """Table of g = f/u for f(0) = 0 on the uniform u grid (u[0] = 0).
+
+    g' = (f' - g)/u; at u = 0, g = f'(0) and g' = f''(0)/2, with f''(0) from a
+    one-sided five-point stencil of the exact f' (error O(h^4), negligible here).
+    """
+    g = np.empty_like(f)
+    dg = np.empty_like(f)
+    g[1:] = f[1:] / u[1:]
+    dg[1:] = (df[1:] - g[1:]) / u[1:]
+    g[0] = df[0]
+    h = u[1] - u[0]
+    d2 = (-25.0 * df[0] + 48.0 * df[1] - 36.0 * df[2] + 16.0 * df[3] - 3.0 * df[4]) / (12.0 * h)
+    dg[0] = 0.5 * d2
+    return UniformTable(0.0, h, g, dg)
 
 
 def _volume_root(chi, ok):

@@ -483,28 +483,32 @@ class _ScaledTables:
         kk = self.k
         kk["efunc"] = (T["ln_e"], _exp)
         kk["hubble"] = (T["ln_e"].scaled(1.0, math.log(cosmo.h0)), _exp)
-        kk["chi"] = (T["chi"].scaled(dh), None)
-        kk["v_now"] = (T["chi"], None)
-        kk["dm"] = (T["dm"].scaled(dh), None)
-        kk["da"] = (T["da"].scaled(dh), None)
-        kk["dl"] = (T["dl"].scaled(dh), None)
+        kk["chi"] = (T["chi/u"].scaled(dh), _times_u)
+        kk["v_now"] = (T["chi/u"], _times_u)
+        kk["dm"] = (T["dm/u"].scaled(dh), _times_u)
+        kk["da"] = (T["da/u"].scaled(dh), _times_u)
+        kk["dl"] = (T["dl/u"].scaled(dh), _times_u)
         # mu = 5 log10(D_L / 10 pc): table of D_L in units of 10 pc.
-        kk["mu"] = (T["dl"].scaled(dh / k.TEN_PC_IN_MPC), _mu)
-        kk["lookback"] = (T["lookback"].scaled(th), None)
+        kk["mu"] = (T["dl/u"].scaled(dh / k.TEN_PC_IN_MPC), _mu)
+        kk["lookback"] = (T["lookback/u"].scaled(th), _times_u)
         kk["age"] = (T["ln_age"].scaled(1.0, math.log(th)), _exp)
-        kk["volume"] = (T["vol_root"].scaled(dh * (4.0 * math.pi / 3.0) ** (1.0 / 3.0)), _cube)
-        kk["dvolume"] = (T["dvol_root"].scaled(dh**1.5), _square)
-        kk["v_emit"] = (T["v_emit"], None)
+        kk["volume"] = (T["vol_root/u"].scaled(dh * (4.0 * math.pi / 3.0) ** (1.0 / 3.0)),
+                        _cube)
+        kk["dvolume"] = (T["dvol_root/u"].scaled(dh**1.5), _square)
+        kk["v_emit"] = (T["v_emit/u"], _times_u)
         kk["dchi_dz"] = (T["ln_dchi_dz"].scaled(1.0, math.log(dh)), _exp)
         kk["ddm_dz"] = (T["ddm_dz"].scaled(dh), None)
         kk["dt_dz"] = (T["ln_dt_dz"].scaled(1.0, math.log(th)), _exp)
-        del ln10
-        self.chi_dimless = T["chi"]
+        self.chi_dimless = T["chi/u"]
         self.inv_chi = tb.T_inv_chi
         self.inv_t = tb.T_inv_t
-        self.cross = tb.T_cross.scaled(th) if tb.T_cross is not None else None
+        # ln(age) as a function of s = ln(remaining conformal time), in ln Gyr.
+        self.cross = (tb.T_cross.scaled(1.0, math.log(th)) if tb.T_cross is not None
+                      else None)
         self.arrive_eta = tb.T_arrive_eta.scaled(th) if tb.T_arrive_eta is not None else None
         self.R0 = tb.R0
+        self.eta0 = tb.eta0
+        self.eta_inf = tb.eta_inf
         self.cross_at_zero = tb.t_end * th
         self.inv_eta0_mpc = 1.0 / self.particle_horizon_mpc
         self.inv_t0_gyr = 1.0 / self.age_today_gyr
@@ -519,6 +523,7 @@ class _ScaledTables:
         if n:
             m = min(n, _CHUNK)
             v = np.empty(m)
+            w = np.empty(m)
             idx = np.empty(m, dtype=np.intp)
             cbuf = np.empty((m, 4))
             kern = self._kernel(what)
@@ -527,85 +532,116 @@ class _ScaledTables:
                     e = min(s + _CHUNK, n)
                     c = e - s
                     if c == m:
-                        kern(flat[s:e], out[s:e], v, idx, cbuf)
+                        kern(flat[s:e], out[s:e], v, w, idx, cbuf)
                     else:
-                        kern(flat[s:e], out[s:e], v[:c], idx[:c], cbuf[:c])
+                        kern(flat[s:e], out[s:e], v[:c], w[:c], idx[:c], cbuf[:c])
         out = out.reshape(shape)
         return out[()] if out.ndim == 0 else out
 
+    # Every kernel first folds invalid input (NaN, negative sentinels such as -99) into a
+    # finite value that lands outside the table: numpy's log takes a slow path on NaN,
+    # zero, negative or infinite arguments, and catalogues are full of such entries.
     def _kernel(self, what):
         if what in self.k:
             tab, post = self.k[what]
             if post is None:
-                def kern(zc, oc, v, idx, cbuf):
-                    np.log1p(zc, out=v)
+                def kern(zc, oc, v, w, idx, cbuf):
+                    np.fmax(zc, -0.5, out=v)  # NaN, z < 0 -> -0.5 -> below the table
+                    np.log1p(v, out=v)
                     tab.eval_into(v, oc, idx, cbuf)
             else:
-                def kern(zc, oc, v, idx, cbuf):
-                    np.log1p(zc, out=v)
+                def kern(zc, oc, v, w, idx, cbuf):
+                    np.fmax(zc, -0.5, out=v)
+                    np.log1p(v, out=v)
+                    np.copyto(w, v)
                     tab.eval_into(v, oc, idx, cbuf)
-                    post(oc, v)
+                    post(oc, v, w)
             return kern
         return getattr(self, "_k_" + what)
 
-    def _k_cross(self, zc, oc, v, idx, cbuf):
+    def _chi(self, zc, oc, v, w, idx, cbuf):
+        """oc = D_C(z) in units of c/H0."""
+        np.fmax(zc, -0.5, out=v)
+        np.log1p(v, out=v)
+        np.copyto(w, v)
+        self.chi_dimless.eval_into(v, oc, idx, cbuf)
+        np.multiply(oc, w, out=oc)
+
+    def _k_cross(self, zc, oc, v, w, idx, cbuf):
         if self.cross is None:
             oc.fill(np.nan)
             return
-        np.log1p(zc, out=v)
-        self.chi_dimless.eval_into(v, oc, idx, cbuf)
-        np.log(oc, out=v)
+        self._chi(zc, oc, v, w, idx, cbuf)
+        # tau = ln((eta_inf - chi) / chi); NaN -> 1e-300 -> below the table
+        np.subtract(self.eta_inf, oc, out=v)
+        np.divide(v, oc, out=v)
+        np.fmax(v, 1e-300, out=v)
+        np.log(v, out=v)
         self.cross.eval_into(v, oc, idx, cbuf)
+        np.exp(oc, out=oc)
         np.copyto(oc, self.cross_at_zero, where=(zc == 0.0))
 
-    def _k_arrive(self, zc, oc, v, idx, cbuf):
-        np.log1p(zc, out=v)
-        self.chi_dimless.eval_into(v, oc, idx, cbuf)
+    def _k_arrive(self, zc, oc, v, w, idx, cbuf):
+        self._chi(zc, oc, v, w, idx, cbuf)
         if self.cross is not None:
-            np.subtract(self.R0, oc, out=v)
+            # tau = ln((eta0 + chi) / (R0 - chi)); beyond the horizon the ratio is
+            # negative -> 1e-300 -> below the table -> NaN
+            np.subtract(self.R0, oc, out=w)
+            np.add(oc, self.eta0, out=v)
+            np.divide(v, w, out=v)
+            np.fmax(v, 1e-300, out=v)
             np.log(v, out=v)
+            self.cross.eval_into(v, oc, idx, cbuf)
+            np.exp(oc, out=oc)
         else:
             np.copyto(v, oc)
-            tab = self.arrive_eta
-            tab.eval_into(v, oc, idx, cbuf)
-            return
-        self.cross.eval_into(v, oc, idx, cbuf)
+            self.arrive_eta.eval_into(v, oc, idx, cbuf)
 
-    def _k_inv_chi(self, dc, oc, v, idx, cbuf):
+    def _k_inv_chi(self, dc, oc, v, w, idx, cbuf):
         np.multiply(dc, -self.inv_eta0_mpc, out=v)
+        np.fmin(v, 1.0, out=v)  # NaN -> 1 -> d < 0 -> below the table
         np.log1p(v, out=v)
         np.negative(v, out=v)
         self.inv_chi.eval_into(v, oc, idx, cbuf)
         np.expm1(oc, out=oc)
 
-    def _k_inv_lookback(self, tc, oc, v, idx, cbuf):
+    def _k_inv_lookback(self, tc, oc, v, w, idx, cbuf):
         np.multiply(tc, -self.inv_t0_gyr, out=v)
+        np.fmin(v, 1.0, out=v)
         np.log1p(v, out=v)
         np.negative(v, out=v)
         self.inv_t.eval_into(v, oc, idx, cbuf)
         np.expm1(oc, out=oc)
 
-    def _k_inv_age(self, tc, oc, v, idx, cbuf):
+    def _k_inv_age(self, tc, oc, v, w, idx, cbuf):
         np.divide(tc, self.age_today_gyr, out=v)  # exact 1 at t = t0
+        np.fmin(v, 2.0, out=v)  # NaN -> 2 -> t > t0 -> below the table
         np.log(v, out=v)
         np.negative(v, out=v)
         self.inv_t.eval_into(v, oc, idx, cbuf)
         np.expm1(oc, out=oc)
 
 
-def _exp(o, v):
+def _exp(o, v, u):
     np.exp(o, out=o)
 
 
-def _cube(o, v):
+def _times_u(o, v, u):
+    np.multiply(o, u, out=o)
+
+
+def _cube(o, v, u):
+    np.multiply(o, u, out=o)
     np.multiply(o, o, out=v)
     np.multiply(o, v, out=o)
 
 
-def _square(o, v):
+def _square(o, v, u):
+    np.multiply(o, u, out=o)
     np.multiply(o, o, out=o)
 
 
-def _mu(o, v):
+def _mu(o, v, u):
+    np.multiply(o, u, out=o)
     np.log10(o, out=o)
     np.multiply(o, 5.0, out=o)
