@@ -53,14 +53,9 @@ class Plan:
         if self.estimated_rows is None:
             return None
         input_bytes = sum(s.size_bytes for s in self.sources)
-        per_row = 0
-        for col in self.added_columns:
-            width = getattr(col.type, "bit_width", 64) // 8 if hasattr(col.type, "bit_width") \
-                else 8
-            per_row += max(width, 1)
-        per_row += 4  # the flags column, mostly empty
-        # Parquet parts compress float columns only a little; count the added columns raw.
-        return int(input_bytes + self.estimated_rows * per_row * 0.9)
+        # Added columns: their raw width (float columns compress little); flags mostly empty.
+        per_row = sum(max(getattr(c.type, "bit_width", 64) // 8, 1) for c in self.added_columns)
+        return int(input_bytes + self.estimated_rows * (per_row + 1))
 
     def annotator_records(self) -> list[dict]:
         return [
@@ -149,6 +144,7 @@ def build_plan(job: Job, pm=None) -> Plan:
             catalogue_schema=schema,
             cosmology=cosmology,
             base_dir=job.base_dir,
+            allowed_roots=tuple(job.allowed_roots),
             explicitly_enabled=entry["enabled"] is True,
         )
         instance = reg.cls.configure(setup)

@@ -39,6 +39,8 @@ def get_plugin_manager(*, extra_plugins=(), autoload: bool | None = None) -> plu
     """
     pm = pluggy.PluginManager("annotator")
     pm.add_hookspecs(hookspecs)
+    origins: dict[str, str] = {}
+    pm.annotator_origins = origins  # plugin name -> "distribution version", for listings
     if autoload is None:
         autoload = os.environ.get(AUTOLOAD_ENV, "") in ("", "0")
     for ep in md.entry_points(group=ENTRY_POINT_GROUP):
@@ -55,10 +57,8 @@ def get_plugin_manager(*, extra_plugins=(), autoload: bool | None = None) -> plu
                 f"failed to load: {exc}"
             ) from exc
         pm.register(plugin, name=ep.name)
-        pm._annotator_origin = getattr(pm, "_annotator_origin", {})
-        pm._annotator_origin[ep.name] = (
-            f"{dist} {ep.dist.version}" if ep.dist is not None else "unknown"
-        )
+        origins[ep.name] = f"{dist} {ep.dist.version}" if ep.dist is not None else "unknown"
+
     for plugin in extra_plugins:
         pm.register(plugin)
     try:
@@ -69,7 +69,7 @@ def get_plugin_manager(*, extra_plugins=(), autoload: bool | None = None) -> plu
 
 
 def plugin_origin(pm: pluggy.PluginManager, plugin_name: str) -> str:
-    origins = getattr(pm, "_annotator_origin", {})
+    origins = getattr(pm, "annotator_origins", {})
     if plugin_name in origins:
         dist = origins[plugin_name]
         if dist.split(" ")[0] == BUILTIN_DISTRIBUTION:
