@@ -16,9 +16,13 @@ import math
 
 import numpy as np
 
-from ._tables import UniformTable, gauss_legendre_intervals, hermite_nonuniform, invert_monotone
+from ._tables import (UniformTable, gauss_legendre_intervals, hermite_nonuniform, invert_monotone,
+                      polish_root)
 
 H = 1.0 / 128.0  # grid spacing in ln(1+z) of every table in z
+# The inverse tables run in v = -ln(eta/eta0) and w = -ln(t/t0); near z = 0, v ~ u/eta0
+# (eta0 ~ 3), so features are ~3x narrower in v than in u: use a finer grid there.
+H_INV = H / 4.0
 Z_MAX_TARGET = 1.0e10  # tables in z reach at least this redshift
 N_PAST = int(math.ceil(math.log1p(Z_MAX_TARGET) / H))
 U_MAX = N_PAST * H  # ln(1 + z_max_tabulated)
@@ -43,6 +47,12 @@ class Tables:
         self._horizon_tables()
 
     # ------------------------------------------------------------ integration
+    def _g_eta(self, x):
+        return self._g(x)[0]
+
+    def _g_t(self, x):
+        return self._g(x)[1]
+
     def _g(self, x):
         """Integrands in x: d eta/dx = 1/(a E), dt/dx = 1/E."""
         with np.errstate(over="ignore", under="ignore"):
@@ -210,23 +220,26 @@ class Tables:
         # z at comoving distance: variable v = -ln(eta_emit / eta0) = -ln(1 - chi/eta0).
         i_tab0 = self.i_tab0
         v_max = -math.log(eta[i_tab0] / self.eta0)
-        n = int(math.floor(v_max / H))
-        v = H * np.arange(n + 1)
+        n = int(math.floor(v_max / H_INV))
+        v = H_INV * np.arange(n + 1)
         xv = invert_monotone(*self._ln_eta, math.log(self.eta0) - v)
+        xv = polish_root(xs, eta, self._g_eta, math.log(self.eta0) - v, xv, log=True)
         xv[0] = 0.0
         lne2, _ = self.bg.ln_e2(xv, slope=True)
         e = np.exp(0.5 * lne2)
         eta_v = self.eta0 * np.exp(-v)
-        self.T_inv_chi = UniformTable(0.0, H, -xv, np.exp(xv) * e * eta_v)
+        # u(v) vanishes at v = 0: tabulate u / v for relative accuracy at small z.
+        self.T_inv_chi = _over_u(v, -xv, np.exp(xv) * e * eta_v)
         # z at age / lookback: variable w = -ln(t_emit / t0).
         w_max = -math.log(t[i_tab0] / self.t0)
-        n = int(math.floor(w_max / H))
-        w = H * np.arange(n + 1)
+        n = int(math.floor(w_max / H_INV))
+        w = H_INV * np.arange(n + 1)
         xw = invert_monotone(xs, np.log(t), self.g_t[: self.i0 + 1] / t, math.log(self.t0) - w)
+        xw = polish_root(xs, t, self._g_t, math.log(self.t0) - w, xw, log=True)
         xw[0] = 0.0
         lne2, _ = self.bg.ln_e2(xw, slope=True)
         e = np.exp(0.5 * lne2)
-        self.T_inv_t = UniformTable(0.0, H, -xw, e * self.t0 * np.exp(-w))
+        self.T_inv_t = _over_u(w, -xw, e * self.t0 * np.exp(-w))
 
     def redshift_where_chi(self, chi):
         """Scalar: z with D_C(z) = chi (dimensionless), or None beyond the grid."""
@@ -280,7 +293,7 @@ class Tables:
 
 
 def _over_u(u, f, df):
-    """Table of g = f/u for f(0) = 0 on the uniform u grid (u[0] = 0).
+    """Table of g = f/u for f(0) = 0 on a uniform grid u (u[0] = 0).
 
     g' = (f' - g)/u; at u = 0, g = f'(0) and g' = f''(0)/2, with f''(0) from a
     one-sided five-point stencil of the exact f' (error O(h^4), negligible here).

@@ -602,7 +602,9 @@ class _ScaledTables:
         np.fmin(v, 1.0, out=v)  # NaN -> 1 -> d < 0 -> below the table
         np.log1p(v, out=v)
         np.negative(v, out=v)
+        np.copyto(w, v)
         self.inv_chi.eval_into(v, oc, idx, cbuf)
+        np.multiply(oc, w, out=oc)  # table holds u / v
         np.expm1(oc, out=oc)
 
     def _k_inv_lookback(self, tc, oc, v, w, idx, cbuf):
@@ -610,7 +612,9 @@ class _ScaledTables:
         np.fmin(v, 1.0, out=v)
         np.log1p(v, out=v)
         np.negative(v, out=v)
+        np.copyto(w, v)
         self.inv_t.eval_into(v, oc, idx, cbuf)
+        np.multiply(oc, w, out=oc)  # table holds u / v
         np.expm1(oc, out=oc)
 
     def _k_inv_age(self, tc, oc, v, w, idx, cbuf):
@@ -618,7 +622,9 @@ class _ScaledTables:
         np.fmin(v, 2.0, out=v)  # NaN -> 2 -> t > t0 -> below the table
         np.log(v, out=v)
         np.negative(v, out=v)
+        np.copyto(w, v)
         self.inv_t.eval_into(v, oc, idx, cbuf)
+        np.multiply(oc, w, out=oc)  # table holds u / v
         np.expm1(oc, out=oc)
 
 
