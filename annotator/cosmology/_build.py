@@ -16,13 +16,9 @@ import math
 
 import numpy as np
 
-from ._tables import (UniformTable, gauss_legendre_intervals, hermite_nonuniform, invert_monotone,
-                      polish_root)
+from ._tables import UniformTable, gauss_legendre_intervals, hermite_nonuniform, invert_monotone
 
 H = 1.0 / 128.0  # grid spacing in ln(1+z) of every table in z
-# The inverse tables run in v = -ln(eta/eta0) and w = -ln(t/t0); near z = 0, v ~ u/eta0
-# (eta0 ~ 3), so features are ~3x narrower in v than in u: use a finer grid there.
-H_INV = H / 4.0
 Z_MAX_TARGET = 1.0e10  # tables in z reach at least this redshift
 N_PAST = int(math.ceil(math.log1p(Z_MAX_TARGET) / H))
 U_MAX = N_PAST * H  # ln(1 + z_max_tabulated)
@@ -217,27 +213,40 @@ class Tables:
         t = self.t[: self.i0 + 1]
         self._ln_eta = (xs, np.log(eta), self.g_eta[: self.i0 + 1] / eta)
         self._ln_t = (self.x, np.log(self.t), self.g_t / self.t)
-        # z at comoving distance: variable v = -ln(eta_emit / eta0) = -ln(1 - chi/eta0).
+        # z at comoving distance chi: variable y = ln(1 + eta0 chi / eta_e), eta_e = eta0 - chi
+        # the conformal time at emission.  dy/dchi = 1 at chi = 0 (so near z = 0, u(y)
+        # varies on the same scale as the forward tables), and y ~ -ln(eta_e) at high z.
         i_tab0 = self.i_tab0
-        v_max = -math.log(eta[i_tab0] / self.eta0)
-        n = int(math.floor(v_max / H_INV))
-        v = H_INV * np.arange(n + 1)
-        xv = invert_monotone(*self._ln_eta, math.log(self.eta0) - v)
-        xv = polish_root(xs, eta, self._g_eta, math.log(self.eta0) - v, xv, log=True)
-        xv[0] = 0.0
-        lne2, _ = self.bg.ln_e2(xv, slope=True)
-        e = np.exp(0.5 * lne2)
-        eta_v = self.eta0 * np.exp(-v)
-        # u(v) vanishes at v = 0: tabulate u / v for relative accuracy at small z.
-        self.T_inv_chi = _over_u(v, -xv, np.exp(xv) * e * eta_v)
+        e0 = self.eta0
+        sl = slice(i_tab0, self.i0 + 1)
+        u_n = -xs[sl][::-1].copy()
+        u_n[0] = 0.0
+        chi_n = self.chi_past[sl][::-1].copy()
+        chi_n[0] = 0.0
+        eta_n = eta[sl][::-1]
+        y_n = np.log1p(e0 * chi_n / eta_n)
+        dy_deta = (1.0 - e0) / (eta_n + e0 * chi_n) - 1.0 / eta_n
+        dy_du = -dy_deta * self.g_eta[sl][::-1]
+        n = int(math.floor(y_n[-1] / H))
+        y = H * np.arange(n + 1)
+        uy = invert_monotone(u_n, y_n, dy_du, y)
+        uy[0] = 0.0
+        lne2 = self.bg.ln_e2(-uy)
+        g_eta = np.exp(uy - 0.5 * lne2)
+        # recover eta_e at the nodes from y: e^y = 1 + e0 chi / eta = 1 + e0 (e0 - eta)/eta
+        eta_y = e0 * e0 / (np.exp(y) - 1.0 + e0)
+        chi_y = e0 - eta_y
+        dyde = (1.0 - e0) / (eta_y + e0 * chi_y) - 1.0 / eta_y
+        du_dy = 1.0 / (-dyde * g_eta)
+        # u(y) vanishes at y = 0: tabulate u / y for relative accuracy at small z.
+        self.T_inv_chi = _over_u(y, uy, du_dy)
         # z at age / lookback: variable w = -ln(t_emit / t0).
         w_max = -math.log(t[i_tab0] / self.t0)
-        n = int(math.floor(w_max / H_INV))
-        w = H_INV * np.arange(n + 1)
+        n = int(math.floor(w_max / H))
+        w = H * np.arange(n + 1)
         xw = invert_monotone(xs, np.log(t), self.g_t[: self.i0 + 1] / t, math.log(self.t0) - w)
-        xw = polish_root(xs, t, self._g_t, math.log(self.t0) - w, xw, log=True)
         xw[0] = 0.0
-        lne2, _ = self.bg.ln_e2(xw, slope=True)
+        lne2 = self.bg.ln_e2(xw)
         e = np.exp(0.5 * lne2)
         self.T_inv_t = _over_u(w, -xw, e * self.t0 * np.exp(-w))
 

@@ -149,34 +149,3 @@ def invert_monotone(xk, fk, dfk, targets, newton_steps=3):
     out_of_range = (targets < fk[0]) | (targets > fk[-1])
     return np.where(out_of_range, np.nan, np.clip(x, xk[0], xk[-1]))
 
-
-def polish_root(xk, fk, integrand, targets, x, sign=1.0, log=False, steps=2, order=8):
-    """Newton steps on the exact F(x) = fk[k] + sign * int_{xk[k]}^x integrand, k the node
-    below x, towards F(x) = targets (or ln F(x) = targets when log=True).
-
-    The integral from the nearest node is done by Gauss-Legendre of the given order, so
-    each step sees F to rounding error instead of to interpolation error.
-    """
-    if order not in _GL_CACHE:
-        _GL_CACHE[order] = np.polynomial.legendre.leggauss(order)
-    nodes, weights = _GL_CACHE[order]
-    x = np.array(x, dtype=float, copy=True)
-    good = np.isfinite(x)
-    xg, tg = x[good], np.asarray(targets, float)[good]
-    for _ in range(steps):
-        k = np.clip(np.searchsorted(xk, xg, side="right") - 1, 0, len(xk) - 2)
-        lo = xk[k]
-        half = 0.5 * (xg - lo)
-        pts = (lo + half)[:, None] + half[:, None] * nodes[None, :]
-        gvals = integrand(pts)
-        big_f = fk[k] + sign * half * (gvals @ weights)
-        dfdx = sign * integrand(xg[:, None])[:, 0]
-        if log:
-            resid = np.log(big_f) - tg
-            deriv = dfdx / big_f
-        else:
-            resid = big_f - tg
-            deriv = dfdx
-        xg = xg - resid / deriv
-    x[good] = xg
-    return x

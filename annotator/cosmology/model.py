@@ -510,7 +510,7 @@ class _ScaledTables:
         self.eta0 = tb.eta0
         self.eta_inf = tb.eta_inf
         self.cross_at_zero = tb.t_end * th
-        self.inv_eta0_mpc = 1.0 / self.particle_horizon_mpc
+        self.r_invalid = -0.5 / tb.eta0
         self.inv_t0_gyr = 1.0 / self.age_today_gyr
 
     # Each kernel maps a chunk of input to a chunk of output using scratch buffers.
@@ -598,13 +598,16 @@ class _ScaledTables:
             self.arrive_eta.eval_into(v, oc, idx, cbuf)
 
     def _k_inv_chi(self, dc, oc, v, w, idx, cbuf):
-        np.multiply(dc, -self.inv_eta0_mpc, out=v)
-        np.fmin(v, 1.0, out=v)  # NaN -> 1 -> d < 0 -> below the table
+        # y = ln(1 + eta0 r), r = d / (eta0 - d); invalid d (NaN, d > eta0) -> r = -0.5/eta0
+        # -> y < 0 -> below the table; d < 0 -> y < 0 as well.
+        np.subtract(self.particle_horizon_mpc, dc, out=v)
+        np.divide(dc, v, out=v)
+        np.fmax(v, self.r_invalid, out=v)
+        np.multiply(v, self.eta0, out=v)
         np.log1p(v, out=v)
-        np.negative(v, out=v)
         np.copyto(w, v)
         self.inv_chi.eval_into(v, oc, idx, cbuf)
-        np.multiply(oc, w, out=oc)  # table holds u / v
+        np.multiply(oc, w, out=oc)  # table holds u / y
         np.expm1(oc, out=oc)
 
     def _k_inv_lookback(self, tc, oc, v, w, idx, cbuf):
