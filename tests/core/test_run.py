@@ -18,7 +18,11 @@ BUILTIN_COLUMNS = [
     "comoving_distance_mpc", "transverse_comoving_distance_mpc", "angular_diameter_distance_mpc",
     "luminosity_distance_mpc", "distance_modulus_mag", "lookback_time_gyr", "age_at_emission_gyr",
     "recession_velocity_now_c", "recession_velocity_at_emission_c", "reachable",
-    "horizon_crossing_age_gyr", "signal_arrival_age_gyr", "annotation_flags",
+    "horizon_crossing_age_gyr", "signal_arrival_age_gyr",
+    # uncertainties: the fixture catalogue has z_err, detected as the redshift error
+    "comoving_distance_err_mpc", "luminosity_distance_err_mpc", "distance_modulus_err_mag",
+    "lookback_time_err_gyr", "age_at_emission_err_gyr", "reachable_probability",
+    "annotation_flags",
 ]
 
 

@@ -1,0 +1,279 @@
+"""Uncertainties of the cosmological quantities, propagated from the redshift error, and the
+probability that each object is reachable (inside our event horizon today).
+
+Propagation is first order with the exact derivatives of the cosmology (no finite
+differences): for a quantity f(z), sigma_f = |df/dz| sigma_z, with
+
+    dD_C/dz = c / H(z)                                    (Hogg 1999, astro-ph/9905116, eq. 15)
+    dD_M/dz = cosh or cos(sqrt|Omega_k| D_C / D_H) dD_C/dz (from eq. 16; = dD_C/dz when flat)
+    dD_L/dz = D_M + (1 + z) dD_M/dz                       (from D_L = (1 + z) D_M, eq. 21)
+    dmu/dz  = 5 / ln 10 * (dD_L/dz) / D_L                 (from mu = 5 log10(D_L / 10 pc))
+    dt_L/dz = 1 / ((1 + z) H(z)) = -d t_emission / dz     (Hogg 1999 eq. 30)
+
+The redshift error is Gaussian (``redshift_error``) or split-normal (``redshift_error_lower``
+and ``redshift_error_upper``: a two-piece normal with its mode at the catalogue redshift, the
+lower half of width sigma_lower and the upper of width sigma_upper; John 1982, Commun.
+Statist. Theory Meth. 11, 879; Wallis 2014, Statist. Sci. 29, 106).  Every quantity here
+increases with z except the age at emission, so its lower error comes from the upper
+redshift error and vice versa.
+
+``reachable_probability`` = P(z_true < z_EH), z_EH the redshift of today's event horizon.  A
+true cosmological redshift cannot be negative, so by default the error distribution is
+truncated at z = 0 and renormalised: P = (F(z_EH) - F(0)) / (1 - F(0)), F the CDF of the error
+distribution.  ``[annotators.uncertainties] truncate_at_zero = false`` gives the plain F(z_EH)
+instead.  A model without an event horizon gives 1 for every usable row.
+
+When ``[columns] redshift_frame = "heliocentric"`` the frames annotator converts the error to
+the CMB frame (times d z_cmb / d z_helio) and redefines the error inputs, so this annotator
+always sees the redshift and the error of the same frame.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pyarrow as pa
+from scipy.special import ndtr
+
+from annotator import Annotator, ColumnSpec, hookimpl
+from annotator.errors import ConfigError
+
+from ._redshift import REDSHIFT_HINTS, usable_redshift
+
+SYMMETRIC = ("redshift_error",)
+PAIR = ("redshift_error_lower", "redshift_error_upper")
+ERROR_HINTS = {
+    "redshift_error": ("z_err", "zerr", "z_error", "redshift_err", "e_z", "sigma_z", "z_sigma"),
+    "redshift_error_lower": ("z_err_lower", "z_err_lo", "zerr_lo", "z_err_minus", "e_z_lo"),
+    "redshift_error_upper": ("z_err_upper", "z_err_hi", "zerr_hi", "z_err_plus", "e_z_hi"),
+}
+FIVE_OVER_LN10 = 5.0 / math.log(10.0)
+
+# (column stem, unit suffix, VOUnit, UCD, quantity, increases with z)
+QUANTITIES = (
+    ("comoving_distance", "mpc", "Mpc", "stat.error;pos.distance",
+     "the line-of-sight comoving distance", True),
+    ("luminosity_distance", "mpc", "Mpc", "stat.error;pos.distance",
+     "the luminosity distance", True),
+    ("distance_modulus", "mag", "mag", "stat.error;phot.mag.distMod",
+     "the distance modulus", True),
+    ("lookback_time", "gyr", "Gyr", "stat.error;time.age",
+     "the lookback time", True),
+    ("age_at_emission", "gyr", "Gyr", "stat.error;time.age",
+     "the age of the universe at emission", False),
+)
+
+FLAG_ERROR = "redshift_error_invalid"
+FLAG_ERROR_TEXT = ("The redshift error is missing, NaN, infinite or negative: no propagated "
+                   "errors.")
+
+
+def _numeric(typ: pa.DataType) -> bool:
+    return pa.types.is_integer(typ) or pa.types.is_floating(typ) or pa.types.is_decimal(typ)
+
+
+def _detected(setup, logical: str) -> bool:
+    """Whether the planner would find ``logical`` by name among the catalogue's columns."""
+    lower = {n.lower(): n for n in setup.catalogue_schema.names}
+    for cand in (logical, *ERROR_HINTS[logical]):
+        name = cand if cand in setup.catalogue_schema.names else lower.get(cand.lower())
+        if name is not None:
+            return _numeric(setup.catalogue_schema.field(name).type)
+    return False
+
+
+def error_inputs(setup) -> tuple[str, ...]:
+    """The redshift-error inputs of this job: ``("redshift_error",)``, the lower/upper pair,
+    or ``()``.  Mappings in ``[columns]`` win over detection; a detected pair wins over a
+    detected symmetric error.  Shared with the frames annotator."""
+    mapped = {k for k in (*SYMMETRIC, *PAIR) if k in setup.columns}
+    if "redshift_error" in mapped and mapped & set(PAIR):
+        other = sorted(mapped & set(PAIR))[0]
+        raise ConfigError(f"[columns].{other}: give either redshift_error or "
+                          f"redshift_error_lower and redshift_error_upper, not both")
+    if mapped & set(PAIR):
+        missing = [k for k in PAIR if k not in mapped]
+        if missing:
+            have = sorted(mapped & set(PAIR))[0]
+            raise ConfigError(f"[columns].{missing[0]}: missing; {have} needs its other half")
+        return PAIR
+    if mapped:
+        return SYMMETRIC
+    if all(_detected(setup, k) for k in PAIR):
+        return PAIR
+    if _detected(setup, "redshift_error"):
+        return SYMMETRIC
+    return ()
+
+
+def reachable_probability_gaussian(z: np.ndarray, sigma: np.ndarray, z_eh: float | None,
+                                   truncate_at_zero: bool = True) -> np.ndarray:
+    """P(z_true < z_eh) for z_true ~ N(z, sigma^2), optionally truncated to z_true >= 0.
+
+    P = (Phi((z_eh - z)/sigma) - Phi(-z/sigma)) / (1 - Phi(-z/sigma)) when truncated (the
+    difference form keeps relative precision for objects far beyond the horizon, and
+    1 - Phi(-z/sigma) >= 1/2 since z >= 0).  NaN where z is NaN or negative or sigma is not a
+    finite non-negative number; sigma = 0 gives a step: 1 below z_eh, 0 at or above it.
+    """
+    z = np.asarray(z, dtype=np.float64)
+    sigma = np.asarray(sigma, dtype=np.float64)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        valid = (z >= 0.0) & (sigma >= 0.0) & np.isfinite(sigma)  # false for NaN
+        if z_eh is None:
+            return np.where(valid, 1.0, np.nan)
+        p = ndtr((z_eh - z) / sigma)  # sigma = 0: +-inf -> 1 or 0; NaN when z = z_eh
+        if truncate_at_zero:
+            f0 = ndtr(-z / sigma)  # sigma = 0: 0, or NaN when z = 0
+            p -= f0
+            p /= 1.0 - f0
+        exact = sigma == 0.0
+        if exact.any():
+            p[exact] = np.where(z[exact] < z_eh, 1.0, 0.0)
+        np.clip(p, 0.0, 1.0, out=p)
+        p[~valid] = np.nan
+    return p
+
+
+def reachable_probability_split(z: np.ndarray, lower: np.ndarray, upper: np.ndarray,
+                                z_eh: float | None, truncate_at_zero: bool = True
+                                ) -> np.ndarray:
+    """P(z_true < z_eh) for a split-normal z_true (mode z, widths lower below, upper above).
+
+    CDF (Wallis 2014, eq. 1 integrated): F(x) = 2 s1/(s1+s2) Phi((x-z)/s1) for x <= z and
+    1 - 2 s2/(s1+s2) Phi((z-x)/s2) above.  Truncated at 0 (z >= 0 puts x = 0 on the lower
+    branch): P = (F(z_eh) - F(0)) / (1 - F(0)).  A zero width makes its half a point mass
+    at the mode (weight 0), so s1 = s2 = 0 is a step, as in the Gaussian case.
+    """
+    z = np.asarray(z, dtype=np.float64)
+    s1 = np.asarray(lower, dtype=np.float64)
+    s2 = np.asarray(upper, dtype=np.float64)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        valid = (z >= 0.0) & (s1 >= 0.0) & np.isfinite(s1) & (s2 >= 0.0) & np.isfinite(s2)
+        if z_eh is None:
+            return np.where(valid, 1.0, np.nan)
+        both_zero = (s1 == 0.0) & (s2 == 0.0)
+        total = np.where(both_zero, 1.0, s1 + s2)
+        w1 = 2.0 * s1 / total  # 0 when s1 = 0: the lower half carries no probability
+        w2 = 2.0 * s2 / total
+        s1_safe = np.where(s1 > 0.0, s1, 1.0)
+        s2_safe = np.where(s2 > 0.0, s2, 1.0)
+        d = z_eh - z
+        f_eh = np.where(d <= 0.0, w1 * ndtr(d / s1_safe), 1.0 - w2 * ndtr(-d / s2_safe))
+        if truncate_at_zero:
+            f0 = w1 * ndtr(-z / s1_safe)
+            p = (f_eh - f0) / (1.0 - f0)
+        else:
+            p = f_eh
+        p = np.clip(p, 0.0, 1.0)
+        p[~valid] = np.nan
+    return p
+
+
+class Uncertainties(Annotator):
+    name = "uncertainties"
+    version = "1.0"
+    summary = "Errors of distances, distance modulus and times propagated from the redshift " \
+              "error; probability of being reachable."
+    position = 50
+    input_hints = {"redshift": REDSHIFT_HINTS, **ERROR_HINTS}
+    OPTIONS = ("truncate_at_zero",)
+
+    def __init__(self, cosmology=None, errors: tuple[str, ...] = SYMMETRIC,
+                 truncate_at_zero: bool = True):
+        self.cosmology = cosmology
+        self.errors = tuple(errors)
+        self.truncate_at_zero = bool(truncate_at_zero)
+        self.requires = ("redshift", *self.errors)
+        self.flags = {FLAG_ERROR: FLAG_ERROR_TEXT}
+        provides = []
+        sides = ("",) if self.errors == SYMMETRIC else ("_lower", "_upper")
+        for stem, suffix, unit, ucd, what, _ in QUANTITIES:
+            for side in sides:
+                which = {"": "Uncertainty", "_lower": "Lower uncertainty",
+                         "_upper": "Upper uncertainty"}[side]
+                provides.append(ColumnSpec(
+                    f"{stem}_err{side}_{suffix}", pa.float64(), unit, ucd,
+                    f"{which} of {what}, first-order propagation of the redshift error."))
+        dist = "Gaussian" if self.errors == SYMMETRIC else "split-normal"
+        trunc = " truncated to z >= 0" if self.truncate_at_zero else ""
+        provides.append(ColumnSpec(
+            "reachable_probability", pa.float64(), None, "stat.probability",
+            f"Probability that the true redshift is below the event-horizon redshift (the "
+            f"object is reachable), for a {dist} redshift error{trunc}."))
+        self.provides = tuple(provides)
+        self.z_eh: float | None = None
+        self._prepared = False
+
+    @classmethod
+    def configure(cls, setup):
+        setup.reject_unknown_options(cls.OPTIONS)
+        truncate = setup.options.get("truncate_at_zero", True)
+        if not isinstance(truncate, bool):
+            raise setup.error("truncate_at_zero", f"expected true or false, got {truncate!r}")
+        errors = error_inputs(setup)
+        if not errors:
+            return None
+        return cls(setup.cosmology, errors, truncate)
+
+    def prepare(self):
+        self.z_eh = self.cosmology.derived()["event_horizon_redshift"]
+        self._prepared = True
+
+    def __getstate__(self):
+        state = self.__dict__.copy()
+        state["_prepared"] = False
+        return state
+
+    def slopes(self, z: np.ndarray) -> dict[str, np.ndarray]:
+        """|d quantity / dz| at z (NaN where z is not usable), by column stem."""
+        c = self.cosmology
+        ddc = c.dcomoving_distance_dz_mpc(z)
+        ddm = ddc if c.is_flat else c.dtransverse_comoving_distance_dz_mpc(z)
+        dm = c.transverse_comoving_distance_mpc(z)
+        one_plus_z = 1.0 + z
+        ddl = ddm * one_plus_z
+        ddl += dm
+        dl = dm * one_plus_z
+        with np.errstate(divide="ignore", invalid="ignore"):
+            dmu = ddl / dl
+        dmu *= FIVE_OVER_LN10
+        dmu[~(dl > 0.0)] = np.nan  # mu = -inf at z = 0: no finite error
+        dt = c.dlookback_time_dz_gyr(z)
+        return {"comoving_distance": ddc, "luminosity_distance": ddl,
+                "distance_modulus": dmu, "lookback_time": dt, "age_at_emission": dt}
+
+    def annotate(self, batch):
+        if not self._prepared:
+            self.prepare()
+        z = usable_redshift(batch.values("redshift"))
+        sigmas = [batch.values(name) for name in self.errors]
+        with np.errstate(invalid="ignore"):
+            bad = np.zeros(batch.num_rows, dtype=bool)
+            for s in sigmas:
+                bad |= ~(np.isfinite(s) & (s >= 0.0))
+        batch.flag(FLAG_ERROR, np.isfinite(z) & bad)
+        z_use = z.copy()
+        z_use[bad] = np.nan
+        slopes = self.slopes(z_use)
+        out = {}
+        if self.errors == SYMMETRIC:
+            (sigma,) = sigmas
+            for stem, suffix, *_ in QUANTITIES:
+                out[f"{stem}_err_{suffix}"] = slopes[stem] * sigma
+            prob = reachable_probability_gaussian(z_use, sigma, self.z_eh, self.truncate_at_zero)
+        else:
+            lower, upper = sigmas
+            for stem, suffix, _, _, _, increasing in QUANTITIES:
+                lo, hi = (lower, upper) if increasing else (upper, lower)
+                out[f"{stem}_err_lower_{suffix}"] = slopes[stem] * lo
+                out[f"{stem}_err_upper_{suffix}"] = slopes[stem] * hi
+            prob = reachable_probability_split(z_use, lower, upper, self.z_eh,
+                                               self.truncate_at_zero)
+        out["reachable_probability"] = prob
+        return out
+
+
+@hookimpl
+def register_annotators():
+    return [Uncertainties]
