@@ -1,0 +1,50 @@
+"""Annotated outputs made once per test session by the real command line (`annotator run`)."""
+
+from __future__ import annotations
+
+import types
+
+import pyarrow.parquet as pq
+import pytest
+from _sql_helpers import MagnitudesTestPlugin, make_catalogue, run_cli
+
+ROWS = 5_000
+
+
+@pytest.fixture(scope="session")
+def outputs(tmp_path_factory):
+    """Three outputs: planck2018 Parquet (3 parts), a CSV with rows set aside, and an
+    Einstein-de Sitter universe (flat, matter only) with closed-form distances."""
+    base = tmp_path_factory.mktemp("sql")
+    cat = base / "catalogue.parquet"
+    pq.write_table(make_catalogue(ROWS), cat, row_group_size=1_500)
+    main = base / "out_planck"
+    assert run_cli("run", cat, "--out", main, "--chunk-rows", 2_000, "--quiet") == 0
+
+    csv = base / "catalogue.csv"
+    lines = ["objid,z,mag_r"] + [f"{i},{0.02 + i * 4e-4},{19 + i * 1e-3}" for i in range(3000)]
+    lines.insert(10, "bad,line")
+    lines.insert(20, "77,notanumber,20.0")
+    csv.write_text("\n".join(lines) + "\n")
+    with_rejects = base / "out_csv"
+    assert run_cli("run", csv, "--out", with_rejects, "--chunk-rows", 1_000, "--quiet") == 0
+
+    job = base / "eds.toml"
+    job.write_text('[cosmology]\nname = "einstein-de-sitter"\nh0 = 70.0\nomega_m = 1.0\n'
+                   't_cmb = 0.0\n')
+    eds = base / "out_eds"
+    assert run_cli("run", cat, "--out", eds, "--config", job, "--quiet") == 0
+    return types.SimpleNamespace(base=base, catalogue=cat, main=main, csv=with_rejects, eds=eds)
+
+
+@pytest.fixture(scope="session")
+def output_with_magnitudes(outputs):
+    from annotator.config import load_job
+    from annotator.registry import get_plugin_manager
+    from annotator.runner import run_job
+
+    pm = get_plugin_manager(extra_plugins=[MagnitudesTestPlugin()])
+    out = outputs.base / "out_mags"
+    job = load_job(None, inputs=[str(outputs.catalogue)], output_dir=str(out), chunk_rows=2_500)
+    run_job(job, pm=pm)
+    return out
