@@ -34,19 +34,17 @@ RANGES = {
 _CHUNK = 16384
 
 
-def _range_text(name, hi_override=None):
+def _range_text(name, hi_label=None):
     lo, hi, lo_inc, hi_inc, unit = RANGES[name]
-    if hi_override is not None:
-        hi = hi_override
-    left = "[" if lo_inc else "("
-    right = "]" if hi_inc else ")"
-    text = f"{left}{lo:g}, {hi:g}{right}" if not isinstance(hi, str) else f"{left}{lo:g}, {hi}{right}"
+    hi_txt = hi_label if hi_label is not None else f"{hi:g}"
+    text = f"{'[' if lo_inc else '('}{lo:g}, {hi_txt}{']' if hi_inc else ')'}"
     return f"{text} {unit}".strip()
 
 
 def _number(name, value, hi_override=None, hi_label=None):
-    """Validate one real parameter; returns a float."""
-    rng = _range_text(name, hi_label if hi_label is not None else hi_override)
+    """Validate one real parameter against RANGES (hi_override replaces the upper
+    bound, hi_label is how it is shown); returns a float."""
+    rng = _range_text(name, hi_label)
     if isinstance(value, (bool, np.bool_)) or not isinstance(value, numbers.Real):
         raise CosmologyError(
             f"{name} must be a real number in {rng}; got {value!r} ({type(value).__name__})",
@@ -87,6 +85,9 @@ class Cosmology:
     give NaN; redshifts beyond ``z_max_tabulated`` (about 1e10) give NaN.
     """
 
+    __slots__ = ("_h0", "_omega_m", "_omega_de_in", "_omega_b", "_t_cmb", "_n_eff", "_m_nu",
+                 "_w0", "_wa", "_name", "_bg", "_tables", "_lock", "__weakref__")
+
     def __init__(self, h0=70.0, omega_m=0.3, omega_de=None, omega_b=0.0, t_cmb=0.0,
                  n_eff=3.046, m_nu=(), w0=-1.0, wa=0.0, name=None):
         self._h0 = _number("h0", h0)
@@ -108,7 +109,8 @@ class Cosmology:
                               w0=self._w0, wa=self._wa)
         if self._bg.omega_de < 0.0:
             raise CosmologyError(
-                "omega_de must be in [0, 10]; a flat model with omega_m="
+                "omega_de must be in [0, 10] (or None for a flat model); a flat model with "
+                "omega_m="
                 f"{self._omega_m:g} (plus radiation {self._bg.omega_rad:.3g} and massive "
                 f"neutrinos {self._bg.omega_nu:.3g}) would need omega_de="
                 f"{self._bg.omega_de:.6g}; pass omega_de explicitly for a curved model",
@@ -117,7 +119,6 @@ class Cosmology:
         self._check_history()
         self._tables = None
         self._lock = threading.Lock()
-        self._scalars = None
 
     # ------------------------------------------------------------ validation
     def _check_m_nu(self, m_nu):
@@ -478,7 +479,6 @@ class _ScaledTables:
                             else self.event_horizon_redshift)
         self.hubble_sphere_redshift = tb.redshift_where_chi(1.0)
         T = tb.T
-        ln10 = math.log(10.0)
         self.k = {}
         kk = self.k
         kk["efunc"] = (T["ln_e"], _exp)

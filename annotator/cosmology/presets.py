@@ -20,7 +20,7 @@ _PRESETS = {
     # 916), N_eff = 3.046 and minimal masses 0, 0, 0.06 eV as assumed in that paper.
     "planck2018": {
         "name": "planck2018", "h0": 67.66, "omega_m": 0.30966, "omega_b": 0.04897,
-        "omega_de": None, "t_cmb": 2.7255, "n_eff": 3.046, "m_nu": [0.0, 0.0, 0.06],
+        "omega_de": None, "t_cmb": 2.7255, "n_eff": 3.046, "m_nu": (0.0, 0.0, 0.06),
         "w0": -1.0, "wa": 0.0,
     },
     # Planck Collaboration 2016, A&A 594, A13 ("Planck 2015 results. XIII"), Table 4,
@@ -29,7 +29,7 @@ _PRESETS = {
     # (Omega_b = 0.0486); T_CMB = 2.7255 K, N_eff = 3.046, masses 0, 0, 0.06 eV.
     "planck2015": {
         "name": "planck2015", "h0": 67.74, "omega_m": 0.3075, "omega_b": 0.0486,
-        "omega_de": None, "t_cmb": 2.7255, "n_eff": 3.046, "m_nu": [0.0, 0.0, 0.06],
+        "omega_de": None, "t_cmb": 2.7255, "n_eff": 3.046, "m_nu": (0.0, 0.0, 0.06),
         "w0": -1.0, "wa": 0.0,
     },
     # Hinshaw et al. 2013, ApJS 208, 19 ("Nine-year WMAP observations"), Table 4,
@@ -37,7 +37,7 @@ _PRESETS = {
     # (Omega_m = 0.2865); T_CMB = 2.725 K, N_eff = 3.04, massless neutrinos, as used there.
     "wmap9": {
         "name": "wmap9", "h0": 69.32, "omega_m": 0.2865, "omega_b": 0.04628,
-        "omega_de": None, "t_cmb": 2.725, "n_eff": 3.04, "m_nu": [],
+        "omega_de": None, "t_cmb": 2.725, "n_eff": 3.04, "m_nu": (),
         "w0": -1.0, "wa": 0.0,
     },
     # The round-number model of textbooks and worked examples (e.g. Hogg 1999,
@@ -45,7 +45,7 @@ _PRESETS = {
     # Omega_m = 0.3, Omega_Lambda = 0.7, flat, no radiation (t_cmb = 0).
     "textbook": {
         "name": "textbook", "h0": 70.0, "omega_m": 0.3, "omega_b": 0.0,
-        "omega_de": None, "t_cmb": 0.0, "n_eff": 3.046, "m_nu": [],
+        "omega_de": None, "t_cmb": 0.0, "n_eff": 3.046, "m_nu": (),
         "w0": -1.0, "wa": 0.0,
     },
 }
