@@ -10,6 +10,7 @@ Two kinds of numbers, kept apart on purpose:
 
 from __future__ import annotations
 
+import math
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -238,6 +239,12 @@ def redshift_aggregate(out: Output, event_horizon_redshift: float | None,
             upper = max(upper, 1.15 * float(event_horizon_redshift))
         upper = upper if upper > 0 else 1.0
         width = upper / bins
+        if event_horizon_redshift is not None and np.isfinite(event_horizon_redshift) \
+                and 0 < event_horizon_redshift < upper:
+            # The event-horizon redshift falls on a bin edge: no bin mixes the two classes.
+            width = float(event_horizon_redshift) / max(1, round(event_horizon_redshift / width))
+        bins = int(math.ceil(upper / width - 1e-9))
+        upper = bins * width
         hist = con.execute(
             f"""SELECT least(CAST(floor({z} / ?) AS BIGINT), ?) AS b,
                        {reach} AS r, count(*)
@@ -257,7 +264,7 @@ def redshift_aggregate(out: Output, event_horizon_redshift: float | None,
         reachable=int(n_reach) if known else None,
         unreachable=int(n_unreach) if known else None,
         reachability_source=source, z_min=float(z_min), z_max=float(z_max),
-        edges=np.linspace(0.0, upper, bins + 1), counts_reachable=counts[True],
+        edges=width * np.arange(bins + 1), counts_reachable=counts[True],
         counts_unreachable=counts[False], counts_unknown=counts[None], above_range=int(above),
     )
 

@@ -154,7 +154,7 @@ def distance_redshift(cosmology, derived: dict, z_sample: np.ndarray | None,
                 if sel.any():
                     st = REACH_STYLE[code]
                     ax.scatter(z_sample[sel], d_sample[sel], s=size * 3, c=st["color"],
-                               marker=st["marker"], alpha=0.55, linewidths=0, zorder=2,
+                               marker=st["marker"], alpha=0.6, linewidths=0, zorder=4,
                                label=f"catalogue objects, {st['label']}")
         ax.plot(z, d_c, color=BLACK, lw=1.8, ls="-", label="comoving distance $D_C$", zorder=3)
         ax.plot(z, d_l, color=BLUE, lw=1.8, ls="--", label="luminosity distance $D_L$", zorder=3)
@@ -270,10 +270,21 @@ def redshift_histogram(agg, derived: dict) -> bytes:
 
 
 # --------------------------------------------------------------------- Hubble diagram
+def empty_universe_distance_modulus_mag(z, h0_km_s_mpc: float) -> np.ndarray:
+    """Distance modulus of the empty (Milne) universe with the same H0, the usual reference of
+    a Hubble diagram: D_L = (c/H0) z (1 + z/2) (Omega_m = Omega_Lambda = 0, open; e.g.
+    Hogg 1999, astro-ph/9905116, eq. 16 with Omega_k = 1)."""
+    z = np.asarray(z, dtype=float)
+    d_l = constants.C_KM_S / h0_km_s_mpc * z * (1.0 + 0.5 * z)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return 5.0 * np.log10(d_l / constants.TEN_PC_IN_MPC)
+
+
 def hubble_diagram(cosmology, derived: dict, z_sample: np.ndarray | None,
                    mu_sample: np.ndarray | None, reach: np.ndarray | None,
                    z_max_data: float | None) -> bytes:
-    """Distance modulus against redshift: the model curve and the sampled objects."""
+    """Distance modulus against redshift: the model curve and the sampled objects; below,
+    the same relative to an empty universe, where acceleration shows as a rise."""
     z_hi = max(10.0, 1.3 * z_max_data) if _finite(z_max_data) else 10.0
     z_lo = 1.0e-3
     if z_sample is not None and len(z_sample):
@@ -282,32 +293,45 @@ def hubble_diagram(cosmology, derived: dict, z_sample: np.ndarray | None,
             z_lo = min(z_lo, float(pos.min()) / 1.3)
     z = np.geomspace(z_lo, min(z_hi, 1.0e4), 500)
     mu = cosmology.distance_modulus_mag(z)
+    h0 = float(cosmology.to_dict()["h0"])
+    mu_empty = empty_universe_distance_modulus_mag(z, h0)
     with style():
-        fig = new_figure(8.6, 4.6)
-        ax = fig.add_subplot()
-        ax.set_xscale("log")
+        fig = new_figure(8.6, 5.8)
+        top, bottom = fig.subplots(2, 1, sharex=True, height_ratios=[2.4, 1.0])
+        top.set_xscale("log")
         if z_sample is not None and len(z_sample):
             size = _point_size(len(z_sample))
             for code in (UNREACHABLE, REACHABLE):
                 sel = (reach == code) & np.isfinite(mu_sample) & (z_sample > 0)
                 if sel.any():
                     st = REACH_STYLE[code]
-                    ax.scatter(z_sample[sel], mu_sample[sel], s=size * 3, c=st["color"],
-                               marker=st["marker"], alpha=0.55, linewidths=0, zorder=2,
-                               label=f"catalogue objects, {st['label']}")
-        ax.plot(z, mu, color=BLACK, lw=1.4, zorder=3,
-                label=r"$\mu(z) = 5\log_{10}(D_L / 10\,\mathrm{pc})$ of the recorded cosmology")
+                    kw = {"s": size * 3, "c": st["color"], "marker": st["marker"],
+                          "alpha": 0.6, "linewidths": 0, "zorder": 4}
+                    top.scatter(z_sample[sel], mu_sample[sel],
+                                label=f"catalogue objects, {st['label']}", **kw)
+                    residual = mu_sample[sel] - empty_universe_distance_modulus_mag(
+                        z_sample[sel], h0)
+                    bottom.scatter(z_sample[sel], residual, **kw)
+        top.plot(z, mu, color=BLACK, lw=1.4, zorder=3,
+                 label=r"$\mu(z) = 5\log_{10}(D_L / 10\,\mathrm{pc})$ of the recorded cosmology")
+        bottom.plot(z, mu - mu_empty, color=BLACK, lw=1.4, zorder=3)
+        bottom.axhline(0.0, color=GREY, lw=1.0, ls=(0, (4, 2)), zorder=1)
         z_eh = derived.get("event_horizon_redshift")
         if _finite(z_eh) and z[0] < z_eh < z[-1]:
-            ax.axvline(z_eh, color=GREY, ls="--", lw=1.0, zorder=1)
-            ax.annotate(f"event horizon today, z = {z_eh:.3f}", xy=(z_eh, 0.03),
-                        xycoords=("data", "axes fraction"), xytext=(-5, 0), ha="right",
-                        textcoords="offset points", fontsize=8.5, color="#333333")
-        ax.set_xlim(z[0], z[-1])
-        plain_log_axis(ax.xaxis)
-        ax.set_xlabel("redshift $z$")
-        ax.set_ylabel(r"distance modulus $\mu$ (mag)")
-        ax.set_title("Hubble diagram")
+            for ax in (top, bottom):
+                ax.axvline(z_eh, color=GREY, ls="--", lw=1.0, zorder=1)
+            top.annotate(f"event horizon today, z = {z_eh:.3f}", xy=(z_eh, 0.04),
+                         xycoords=("data", "axes fraction"), xytext=(-5, 0), ha="right",
+                         textcoords="offset points", fontsize=8.5, color="#333333")
+        top.set_xlim(z[0], z[-1])
+        plain_log_axis(top.xaxis)
+        bottom.set_xlabel("redshift $z$")
+        top.set_ylabel(r"distance modulus $\mu$ (mag)")
+        bottom.set_ylabel(r"$\mu - \mu_\mathrm{empty}$ (mag)")
+        bottom.annotate("0 = empty universe, same H$_0$ (coasting, no acceleration)",
+                        xy=(0.01, 0.06), xycoords="axes fraction", fontsize=8.5,
+                        color="#333333")
+        top.set_title("Hubble diagram")
         fig.legend(loc="outside lower center", ncol=1, markerscale=2.0)
         return to_png(fig)
 
@@ -399,7 +423,7 @@ def sky_map(ra: np.ndarray, dec: np.ndarray, reach: np.ndarray, seed: int) -> by
         small = width < 120.0 and (dec_hi - dec_lo) < 60.0
     size = _point_size(len(ra))
     with style():
-        fig = new_figure(8.6, 4.6 if small else 5.0)
+        fig = new_figure(8.6, 3.9 if small else 5.0)
         if small:
             grid = fig.add_gridspec(1, 2, width_ratios=[1.75, 1.0])
             ax = fig.add_subplot(grid[0], projection="mollweide")
@@ -412,10 +436,16 @@ def sky_map(ra: np.ndarray, dec: np.ndarray, reach: np.ndarray, seed: int) -> by
             ax.scatter(lon, np.radians(dec), s=size, c=colours, linewidths=0, alpha=0.7)
         ticks = np.arange(-150, 181, 30)
         ax.set_xticks(np.radians(ticks))
-        ax.set_xticklabels([f"{int(np.mod(-t, 360))}°" for t in ticks], fontsize=7.5,
-                           color="#555555")
+        from matplotlib import patheffects
+
+        halo = [patheffects.withStroke(linewidth=2.5, foreground="white")]
+        labels = ax.set_xticklabels([f"{int(np.mod(-t, 360))}°" for t in ticks], fontsize=7.5,
+                                    color="#333333")
+        for label in labels:
+            label.set_path_effects(halo)  # readable over the points
         ax.tick_params(axis="y", labelsize=8)
-        ax.grid(True, color="#bbbbbb", lw=0.5)
+        ax.set_axisbelow(False)  # the graticule over the points, thin and light
+        ax.grid(True, color="#888888", lw=0.4, alpha=0.6)
         ax.set_title("Whole sky (Mollweide, equatorial; RA grows to the left)", fontsize=10,
                      pad=16)
         if zoom is not None:

@@ -441,6 +441,18 @@ def test_faint_edge_follows_the_flux_limit():
     assert np.all(np.diff(me) < 0)  # brighter limit at higher redshift
 
 
+def test_empty_universe_reference_of_the_hubble_diagram():
+    """The residual panel's reference against astropy's LambdaCDM(Om0=0, Ode0=0), the empty
+    open universe (outside reference; closed form D_L = c z (1 + z/2) / H0)."""
+    from astropy.cosmology import LambdaCDM
+
+    from annotator.report.figures import empty_universe_distance_modulus_mag
+
+    z = np.array([0.001, 0.1, 0.5, 1.0, 3.0, 10.0, 1000.0])
+    reference = LambdaCDM(H0=67.66, Om0=0.0, Ode0=0.0, Tcmb0=0.0).distmod(z).value
+    assert np.allclose(empty_universe_distance_modulus_mag(z, 67.66), reference, atol=1e-9)
+
+
 def test_ra_span_across_zero():
     # closed forms: points at 350..10 degrees span 20 degrees starting at 350
     start, width = _ra_span(np.array([350.0, 355.0, 0.0, 5.0, 10.0]))
