@@ -1,0 +1,445 @@
+"""The ways of computing a K-correction, each built once per job and evaluated per batch.
+
+K is defined as in Hogg, Baldry, Blanton & Eisenstein (2002, astro-ph/0210394):
+``m_R = M_Q + mu(z) + K_QR(z)``, R the observed band, Q the rest-frame band (Q = R unless a
+``rest_filter`` is given).
+
+* :class:`PowerLaw` -- f_nu proportional to nu^alpha: ``K = -2.5 (1 + alpha) log10(1 + z)``
+  (Hogg et al. 2002, the power-law case after eq. 13), whatever the filter.
+* :class:`PowerLawFromColour` -- the same with alpha, per object, the slope of the power law
+  whose synthetic colour through the two colour filters equals the observed colour.
+* :class:`Template` -- an SED through the filters by synthetic photometry (eq. 9).
+* :class:`TemplateMix` -- per object, the non-negative mixture of two SEDs whose synthetic
+  colour at the object's redshift equals its observed colour, then eq. 9 on that mixture.
+* :class:`Polynomial` -- ``K = sum_xy a_xy z^x c^y`` with user coefficients (the published
+  form of Chilingarian, Melchior & Zolotukhin 2010, MNRAS 405, 1409, eq. 1).
+
+Every method returns K with NaN where it has no value, and a mask per flag suffix.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import ClassVar
+
+import numpy as np
+
+from annotator.errors import ConfigError
+
+from .synthetic import ab_maggies
+from .tables import Curve, Filter, Grid, Tabulated, tabulate
+
+LN10 = math.log(10.0)
+#: Flag suffixes a method may raise (the annotator prefixes ``kcorrection_<band>_``).
+OUTSIDE_Z = "outside_redshift_range"
+COLOUR_MISSING = "colour_missing"
+COLOUR_OUTSIDE = "colour_outside_range"
+COLOUR_CLIPPED = "colour_clipped"
+
+
+def _mag_error(guess: np.ndarray, exact: np.ndarray) -> np.ndarray:
+    return np.abs(guess - exact)
+
+
+def _maggies_error(guess: np.ndarray, exact: np.ndarray) -> np.ndarray:
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.abs(2.5 * np.log10(guess / exact))
+
+
+class Method:
+    """A K-correction method for one band."""
+
+    kind: ClassVar[str] = ""
+    #: ``(p, q)``: the method reads the observed colour m_p - m_q (band names), or None.
+    colour: tuple[str, str] | None = None
+    z_max: float = math.inf
+
+    def flag_suffixes(self) -> dict[str, str]:
+        """``{suffix: description}`` of the flags :meth:`evaluate` may raise."""
+        out = {OUTSIDE_Z: f"The redshift is outside the range 0 <= z <= {self.z_max:g} over "
+                          f"which this band's K-correction is defined: null K-correction and "
+                          f"absolute magnitude."}
+        if self.colour is not None:
+            p, q = self.colour
+            out[COLOUR_MISSING] = (f"The {p} or {q} magnitude needed for the colour {p} - {q} "
+                                   f"is null: null K-correction and absolute magnitude.")
+        return out
+
+    def describe(self) -> str:
+        raise NotImplementedError
+
+    def evaluate(self, z: np.ndarray, colour: np.ndarray | None
+                 ) -> tuple[np.ndarray, dict[str, np.ndarray]]:
+        """K at each row (NaN where there is none) and the flag masks."""
+        raise NotImplementedError
+
+    def derivatives(self, z: np.ndarray, colour: np.ndarray | None
+                    ) -> tuple[np.ndarray, np.ndarray]:
+        """dK/dz and dK/dcolour at each row (central differences unless overridden)."""
+        hz = 1e-4
+        z_lo = np.clip(z - hz, 0.0, self.z_max)
+        z_hi = np.clip(z + hz, 0.0, self.z_max)
+        k_lo, _ = self.evaluate(z_lo, colour)
+        k_hi, _ = self.evaluate(z_hi, colour)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            dkdz = (k_hi - k_lo) / (z_hi - z_lo)
+        if colour is None:
+            return dkdz, np.zeros_like(z)
+        hc = 1e-3
+        k_lo, _ = self.evaluate(z, colour - hc)
+        k_hi, _ = self.evaluate(z, colour + hc)
+        return dkdz, (k_hi - k_lo) / (2 * hc)
+
+    # -- shared ----------------------------------------------------------------------
+    def _outside(self, z: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """(usable, flag): usable where 0 <= z <= z_max; flag where z is finite but outside."""
+        with np.errstate(invalid="ignore"):
+            usable = (z >= 0.0) & (z <= self.z_max)
+        return usable, np.isfinite(z) & ~usable
+
+    def _colour_checks(self, colour: np.ndarray) -> np.ndarray:
+        return ~np.isfinite(colour)
+
+
+# ------------------------------------------------------------------------ power laws
+@dataclass(kw_only=True)
+class PowerLaw(Method):
+    """f_nu proportional to nu^alpha (alpha = 0: flat in f_nu; alpha = -2: flat in f_lambda)."""
+
+    alpha: float
+    z_max: float = math.inf
+    kind: ClassVar[str] = "power_law"
+
+    def describe(self) -> str:
+        return (f"power law f_nu ~ nu^{self.alpha:g}: K = -2.5 (1 + alpha) log10(1 + z) "
+                f"(Hogg et al. 2002)")
+
+    def evaluate(self, z, colour=None):
+        usable, outside = self._outside(z)
+        k = (-2.5 * (1.0 + self.alpha) / LN10) * np.log1p(np.where(usable, z, np.nan))
+        return k, {OUTSIDE_Z: outside}
+
+    def derivatives(self, z, colour=None):
+        with np.errstate(invalid="ignore"):
+            return (-2.5 * (1.0 + self.alpha) / LN10) / (1.0 + z), np.zeros_like(z)
+
+
+def power_law_colours(filt_p: Filter, filt_q: Filter, alphas: np.ndarray) -> np.ndarray:
+    """Synthetic AB colour m_p - m_q of f_nu ~ nu^alpha, for each alpha.
+
+    Maggies of a power law through a photon-counting filter are proportional to
+    ``int lambda^(-alpha) R(lambda) dlambda / lambda`` divided by ``int R dlambda / lambda``
+    (Hogg et al. 2002 eq. 2 with f_nu ~ nu^alpha). Both by Simpson's rule with two panels in
+    every interval of the filter table, so R is linear inside each panel.
+    """
+    def log_maggies(f: Filter) -> np.ndarray:
+        nz = np.flatnonzero(f.value > 0)
+        lo, hi = max(nz[0] - 1, 0), min(nz[-1] + 1, len(f.wave) - 1)
+        fw, fr = f.wave[lo:hi + 1], f.value[lo:hi + 1]
+        sub = 4
+        t = np.linspace(0.0, 1.0, sub + 1)[:-1]
+        x = np.append((fw[:-1, None] + np.diff(fw)[:, None] * t[None, :]).ravel(), fw[-1])
+        # Simpson weights h/3 (1, 4, 1) on each panel (x_2k, x_2k+1, x_2k+2).
+        panel_h = np.repeat(np.diff(fw) / sub, sub)[0::2]
+        wt = np.zeros_like(x)
+        wt[0:-1:2] += panel_h / 3.0
+        wt[1::2] += 4.0 * panel_h / 3.0
+        wt[2::2] += panel_h / 3.0
+        wt *= np.interp(x, fw, fr) / x
+        wt /= wt.sum()
+        lnx = np.log(x / f.pivot_A)
+        out = np.empty(alphas.size)
+        step = max(1, 2_000_000 // x.size)
+        for i in range(0, alphas.size, step):
+            a = alphas[i:i + step]
+            e = -a[:, None] * lnx[None, :]
+            top = e.max(axis=1, keepdims=True)
+            out[i:i + a.size] = top[:, 0] + np.log(np.exp(e - top) @ wt)
+        return out - alphas * math.log(f.pivot_A)
+
+    return -2.5 / LN10 * (log_maggies(filt_p) - log_maggies(filt_q))
+
+
+@dataclass(kw_only=True)
+class PowerLawFromColour(Method):
+    """Power law whose slope reproduces the observed colour m_p - m_q."""
+
+    colour: tuple[str, str]
+    colour_grid: Grid  # colour_min + k * step -> alpha (uniform in colour)
+    colour_min: float
+    alphas_on_grid: np.ndarray
+    alpha_range: tuple[float, float]
+    z_max: float = math.inf
+    kind: ClassVar[str] = "power_law_colour"
+
+    @classmethod
+    def build(cls, colour: tuple[str, str], filt_p: Filter, filt_q: Filter,
+              alpha_range: tuple[float, float], z_max: float, key: str) -> "PowerLawFromColour":
+        a_lo, a_hi = alpha_range
+        alphas = np.linspace(a_lo, a_hi, int(round((a_hi - a_lo) / 0.01)) + 1)
+        colours = power_law_colours(filt_p, filt_q, alphas)
+        step = np.diff(colours)
+        if not (np.all(step > 0) or np.all(step < 0)):
+            raise ConfigError(
+                f"{key}: the colour {colour[0]} - {colour[1]} (filters {filt_p.path} and "
+                f"{filt_q.path}) does not change monotonically with the power-law slope over "
+                f"alpha = {a_lo:g} to {a_hi:g}, so it cannot determine the slope; use two "
+                f"bands that do not overlap"
+            )
+        if step[0] < 0:
+            colours, alphas = colours[::-1], alphas[::-1]
+        # Resample alpha(colour) on a uniform colour grid: one gather per row, no search.
+        n = 8 * len(alphas) + 1
+        c_lo, c_hi = float(colours[0]), float(colours[-1])
+        grid_c = np.linspace(c_lo, c_hi, n)
+        alpha_of_c = np.interp(grid_c, colours, alphas)
+        return cls(colour=colour, colour_grid=Grid(c_hi - c_lo, n), colour_min=c_lo,
+                   alphas_on_grid=alpha_of_c, alpha_range=(a_lo, a_hi), z_max=z_max)
+
+    def flag_suffixes(self):
+        out = super().flag_suffixes()
+        p, q = self.colour
+        c_hi = self.colour_min + self.colour_grid.z_max
+        out[COLOUR_OUTSIDE] = (
+            f"The colour {p} - {q} lies outside {self.colour_min:.3f} to {c_hi:.3f}, the "
+            f"colours of power laws with slopes {self.alpha_range[0]:g} to "
+            f"{self.alpha_range[1]:g}: null K-correction and absolute magnitude.")
+        return out
+
+    def describe(self) -> str:
+        p, q = self.colour
+        return (f"power law f_nu ~ nu^alpha with alpha per object from the colour {p} - {q} "
+                f"(K = -2.5 (1 + alpha) log10(1 + z), Hogg et al. 2002)")
+
+    def alpha(self, colour: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Slope per row (NaN outside the tabulated colours) and the outside mask."""
+        idx, frac, inside = self.colour_grid.locate(colour - self.colour_min)
+        slopes = np.diff(self.alphas_on_grid)
+        a = self.alphas_on_grid[idx] + frac * slopes[idx]
+        a[~inside] = np.nan
+        return a, np.isfinite(colour) & ~inside
+
+    def evaluate(self, z, colour):
+        usable, outside = self._outside(z)
+        alpha, colour_out = self.alpha(colour)
+        k = -2.5 / LN10 * (1.0 + alpha) * np.log1p(np.where(usable, z, np.nan))
+        return k, {OUTSIDE_Z: outside, COLOUR_MISSING: ~np.isfinite(colour),
+                   COLOUR_OUTSIDE: colour_out}
+
+    def derivatives(self, z, colour):
+        alpha, _ = self.alpha(colour)
+        idx, _, _ = self.colour_grid.locate(colour - self.colour_min)
+        dalpha_dc = np.diff(self.alphas_on_grid)[idx] / self.colour_grid.step
+        with np.errstate(invalid="ignore"):
+            dkdz = -2.5 / LN10 * (1.0 + alpha) / (1.0 + z)
+            dkdc = -2.5 / LN10 * np.log1p(z) * dalpha_dc
+        return dkdz, dkdc
+
+
+# ------------------------------------------------------------------------- templates
+def _shape_maggies(sed: Curve, filt: Filter, z: np.ndarray) -> np.ndarray:
+    """AB maggies of the SED (its own scale) observed at each z through the filter."""
+    return ab_maggies(sed.wave, sed.value, filt.wave, filt.value, z)
+
+
+def _check_flux(values: np.ndarray, grid_z: np.ndarray, sed: Curve, filt: Filter,
+                key: str) -> None:
+    bad = ~(values > 0)
+    if np.any(bad):
+        zb = grid_z[np.flatnonzero(bad)] if grid_z.size == values.size else grid_z
+        raise ConfigError(
+            f"{key}: SED {sed.path} gives no flux through filter {filt.path} at "
+            f"z = {zb.min():.4g} to {zb.max():.4g} (the SED is zero over the whole "
+            f"redshifted band there), so no K-correction exists; lower z_max or use an SED "
+            f"without a gap"
+        )
+
+
+@dataclass(kw_only=True)
+class Template(Method):
+    """One SED through the band's filter (and rest-frame filter) by synthetic photometry."""
+
+    table: Tabulated  # one function: K(z)
+    sed_path: str
+    z_max: float
+    kind: ClassVar[str] = "template"
+
+    @classmethod
+    def build(cls, sed: Curve, filt: Filter, rest: Filter, z_max: float, key: str,
+              tolerance: float) -> "Template":
+        rest_maggies = float(_shape_maggies(sed, rest, np.zeros(1))[0])
+        _check_flux(np.array([rest_maggies]), np.zeros(1), sed, rest, key)
+
+        def k_of_z(z: np.ndarray) -> np.ndarray:
+            m = _shape_maggies(sed, filt, z)
+            _check_flux(m, z, sed, filt, key)
+            return -2.5 * np.log10(m / rest_maggies)
+
+        table = tabulate([k_of_z], z_max, error=_mag_error, tolerance=tolerance)
+        return cls(table=table, sed_path=sed.path, z_max=z_max)
+
+    def describe(self) -> str:
+        return (f"template SED {self.sed_path} by synthetic photometry (Hogg et al. 2002 "
+                f"eq. 9), tabulated at {self.table.grid.n} redshifts on 0 <= z <= "
+                f"{self.z_max:g} (interpolation error <= {self.table.max_error:.1e} mag)")
+
+    def evaluate(self, z, colour=None):
+        idx, frac, inside = self.table.grid.locate(z)
+        k = self.table.at(0, idx, frac)
+        k[~inside] = np.nan
+        return k, {OUTSIDE_Z: np.isfinite(z) & ~inside}
+
+    def derivatives(self, z, colour=None):
+        idx, _, _ = self.table.grid.locate(z)
+        return self.table.derivative(0, idx), np.zeros_like(z)
+
+
+@dataclass(kw_only=True)
+class TemplateMix(Method):
+    """Per object, the mixture (1 - w) A + w B (0 <= w <= 1) of two SEDs, each scaled to unit
+    rest-frame flux in the rest-frame band, whose synthetic colour m_p - m_q at the object's
+    redshift equals the observed one.
+
+    Synthetic fluxes are linear in the SED, so with tabulated fluxes F_X^A(z), F_X^B(z) of both
+    templates in every filter X the colour condition
+    ``F_p(w) / F_q(w) = 10^(-0.4 c)`` is linear in w and solves in closed form:
+    ``w = a / (a - b)``, ``a = F_p^A - rho F_q^A``, ``b = F_p^B - rho F_q^B``.
+    A colour outside the two templates' colours at that redshift is clipped to the nearer
+    template and flagged.
+    """
+
+    colour: tuple[str, str]
+    table: Tabulated  # rows: A_R, B_R, A_p, B_p, A_q, B_q (maggies, unit rest-frame flux)
+    sed_paths: tuple[str, str]
+    z_max: float
+    kind: ClassVar[str] = "template_mix"
+
+    @classmethod
+    def build(cls, seds: tuple[Curve, Curve], filt: Filter, rest: Filter,
+              colour: tuple[str, str], colour_filters: tuple[Filter, Filter], z_max: float,
+              key: str, tolerance: float) -> "TemplateMix":
+        functions = []
+        for filt_x in (filt, *colour_filters):
+            for sed in seds:
+                rest_maggies = float(_shape_maggies(sed, rest, np.zeros(1))[0])
+                _check_flux(np.array([rest_maggies]), np.zeros(1), sed, rest, key)
+
+                def f(z, sed=sed, filt_x=filt_x, scale=rest_maggies):
+                    m = _shape_maggies(sed, filt_x, z)
+                    _check_flux(m, z, sed, filt_x, key)
+                    return m / scale
+
+                functions.append(f)
+        table = tabulate(functions, z_max, error=_maggies_error, tolerance=tolerance)
+        return cls(colour=colour, table=table, sed_paths=(seds[0].path, seds[1].path),
+                   z_max=z_max)
+
+    def flag_suffixes(self):
+        out = super().flag_suffixes()
+        p, q = self.colour
+        out[COLOUR_CLIPPED] = (
+            f"The colour {p} - {q} lies outside the colours of the two templates at this "
+            f"redshift: the K-correction is that of the nearer template.")
+        return out
+
+    def describe(self) -> str:
+        p, q = self.colour
+        return (f"per-object mixture of templates {self.sed_paths[0]} and {self.sed_paths[1]} "
+                f"matching the colour {p} - {q}, by synthetic photometry (Hogg et al. 2002 "
+                f"eq. 9), fluxes tabulated at {self.table.grid.n} redshifts on 0 <= z <= "
+                f"{self.z_max:g}")
+
+    def weights(self, z: np.ndarray, colour: np.ndarray):
+        """Mixture weight w of template B per row, with the flux table lookups."""
+        idx, frac, inside = self.table.grid.locate(z)
+        t = self.table
+        a_r, b_r = t.at(0, idx, frac), t.at(1, idx, frac)
+        a_p, b_p = t.at(2, idx, frac), t.at(3, idx, frac)
+        a_q, b_q = t.at(4, idx, frac), t.at(5, idx, frac)
+        rho = np.power(10.0, -0.4 * colour)
+        a = a_p - rho * a_q
+        b = b_p - rho * b_q
+        denom = a - b
+        with np.errstate(invalid="ignore", divide="ignore"):
+            w = np.where(np.abs(denom) > 1e-12 * (np.abs(a) + np.abs(b)), a / denom, 0.5)
+            clipped = (w < -1e-9) | (w > 1.0 + 1e-9)
+        np.clip(w, 0.0, 1.0, out=w)
+        return w, clipped, inside, a_r, b_r
+
+    def evaluate(self, z, colour):
+        w, clipped, inside, a_r, b_r = self.weights(z, colour)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            k = -2.5 * np.log10(((1.0 - w) * a_r + w * b_r) / (1.0 + z))
+        missing = ~np.isfinite(colour)
+        k[~inside | missing] = np.nan
+        return k, {OUTSIDE_Z: np.isfinite(z) & ~inside, COLOUR_MISSING: missing,
+                   COLOUR_CLIPPED: clipped & inside & ~missing}
+
+
+# ------------------------------------------------------------------------ polynomial
+@dataclass(kw_only=True)
+class Polynomial(Method):
+    """``K(z, c) = sum_x sum_y a[x][y] z^x c^y`` (Chilingarian et al. 2010, eq. 1)."""
+
+    colour: tuple[str, str]
+    coefficients: np.ndarray  # (powers of z, powers of colour)
+    z_max: float
+    colour_range: tuple[float, float] | None = None
+    kind: ClassVar[str] = "polynomial"
+
+    def flag_suffixes(self):
+        out = super().flag_suffixes()
+        if self.colour_range is not None:
+            p, q = self.colour
+            lo, hi = self.colour_range
+            out[COLOUR_OUTSIDE] = (f"The colour {p} - {q} lies outside {lo:g} to {hi:g}, where "
+                                   f"the polynomial is valid: null K-correction and absolute "
+                                   f"magnitude.")
+        return out
+
+    def describe(self) -> str:
+        p, q = self.colour
+        nx, ny = self.coefficients.shape
+        return (f"polynomial K = sum a_xy z^x ({p} - {q})^y, x < {nx}, y < {ny} "
+                f"(form of Chilingarian, Melchior & Zolotukhin 2010), valid for "
+                f"0 <= z <= {self.z_max:g}")
+
+    def _valid(self, z, colour):
+        usable, outside = self._outside(z)
+        missing = ~np.isfinite(colour)
+        flags = {OUTSIDE_Z: outside, COLOUR_MISSING: missing}
+        ok = usable & ~missing
+        if self.colour_range is not None:
+            lo, hi = self.colour_range
+            with np.errstate(invalid="ignore"):
+                out_c = ~missing & ((colour < lo) | (colour > hi))
+            flags[COLOUR_OUTSIDE] = out_c
+            ok &= ~out_c
+        return ok, flags
+
+    def evaluate(self, z, colour):
+        ok, flags = self._valid(z, colour)
+        k = _polyval2d(z, colour, self.coefficients)
+        k[~ok] = np.nan
+        return k, flags
+
+    def derivatives(self, z, colour):
+        a = self.coefficients
+        dz = np.arange(a.shape[0])[:, None] * a
+        dc = np.arange(a.shape[1])[None, :] * a
+        return (_polyval2d(z, colour, dz[1:]) if a.shape[0] > 1 else np.zeros_like(z),
+                _polyval2d(z, colour, dc[:, 1:]) if a.shape[1] > 1 else np.zeros_like(z))
+
+
+def _polyval2d(z: np.ndarray, c: np.ndarray, a: np.ndarray) -> np.ndarray:
+    """Horner's rule in z of Horner's rules in c (few passes over the rows, no powers)."""
+    out = np.zeros_like(z)
+    for row in a[::-1]:
+        inner = np.full_like(c, row[-1])
+        for coef in row[-2::-1]:
+            inner *= c
+            inner += coef
+        out *= z
+        out += inner
+    return out
