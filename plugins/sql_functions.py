@@ -19,14 +19,12 @@ ABSOLUTE_MAGNITUDE = re.compile(r"^absolute_magnitude_([a-z0-9_]+)_mag$")
 K_SHELL_OBJECTS = 101  # objects nearest z_max (either side) whose median K stands for K(z_max)
 
 
-def _usable(z: np.ndarray) -> np.ndarray:
-    """Redshifts the annotators accept (finite, >= 0), NaN elsewhere."""
-    ok = np.isfinite(z) & (z >= 0)
-    return np.where(ok, z, np.nan)
-
-
 class _OfRedshift:
-    """``cosmology.<method>(z)`` on usable redshifts; picklable (a class, not a closure)."""
+    """``cosmology.<method>(z)``; picklable (a class, not a closure).
+
+    The engine returns NaN for a NaN, infinite or negative redshift (NULL in SQL, as in the
+    annotated columns); for ``reachable``, which is False there, such rows are masked.
+    """
 
     def __init__(self, cosmology, method: str, boolean: bool = False):
         self.cosmology = cosmology
@@ -34,10 +32,10 @@ class _OfRedshift:
         self.boolean = boolean
 
     def __call__(self, z: np.ndarray):
-        zu = _usable(z)
-        out = getattr(self.cosmology, self.method)(zu)
+        out = getattr(self.cosmology, self.method)(z)
         if self.boolean:
-            return np.ma.MaskedArray(np.asarray(out, dtype=bool), mask=np.isnan(zu))
+            return np.ma.MaskedArray(np.asarray(out, dtype=bool),
+                                     mask=~(z >= 0) | np.isinf(z))
         return out
 
 
@@ -49,7 +47,7 @@ class _Inverse:
         self.method = method
 
     def __call__(self, x: np.ndarray):
-        return getattr(self.cosmology, self.method)(np.where(np.isfinite(x), x, np.nan))
+        return getattr(self.cosmology, self.method)(x)
 
 
 # name, unit, description (of z)
