@@ -1,0 +1,1 @@
+"""The invented Quillfield Deep Survey: generator, demo and sample files (see README.md)."""
