@@ -15,6 +15,7 @@ instance is pickled to Dask workers, so it holds only arrays, numbers and pickla
 
 from __future__ import annotations
 
+import os
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -109,6 +110,8 @@ class Setup:
     :ivar catalogue_schema: the Arrow schema of the input catalogue.
     :ivar cosmology: the job's :class:`annotator.cosmology.Cosmology`.
     :ivar base_dir: folder that relative paths in the job file are resolved against.
+    :ivar allowed_roots: when not empty, the only folders :meth:`read_table` may read from
+        (the batch service sets its data roots).
     """
 
     annotator_name: str
@@ -119,6 +122,7 @@ class Setup:
     cosmology: Any
     base_dir: Path
     explicitly_enabled: bool = False
+    allowed_roots: tuple = ()
 
     def error(self, key: str, why: str) -> ConfigError:
         """A ConfigError naming ``[annotators.<name>].key`` (or a section key as given)."""
@@ -136,7 +140,15 @@ class Setup:
 
     def resolve_path(self, path: str | Path) -> Path:
         p = Path(path).expanduser()
-        return p if p.is_absolute() else (self.base_dir / p)
+        p = p if p.is_absolute() else (self.base_dir / p)
+        if self.allowed_roots:
+            real = Path(os.path.realpath(p))
+            if not any(real.is_relative_to(root) for root in map(Path, self.allowed_roots)):
+                raise ConfigError(
+                    f"[annotators.{self.annotator_name}]: file {path} is outside the folders "
+                    f"this job may read ({', '.join(map(str, self.allowed_roots))})"
+                )
+        return p
 
     def read_table(self, path: str | Path, *, what: str, min_columns: int = 2) -> np.ndarray:
         """Read a small numeric text table (CSV or whitespace separated, '#' comments).

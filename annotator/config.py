@@ -71,6 +71,8 @@ class Job:
     :ivar sections: other top-level tables, each claimed by an annotator at plan time.
     :ivar base_dir: folder relative paths are resolved against (the job file's folder).
     :ivar source: the job file, when there is one.
+    :ivar allowed_roots: when set, the only folders files named in annotator options may be
+        read from (the service sets its data roots; the command line leaves it empty).
     """
 
     inputs: list[Path]
@@ -87,6 +89,7 @@ class Job:
     sections: dict = field(default_factory=dict)
     base_dir: Path = field(default_factory=Path.cwd)
     source: Path | None = None
+    allowed_roots: tuple[Path, ...] = ()
 
     def to_dict(self) -> dict:
         """JSON-serialisable form (recorded in the manifest; compared on resume)."""

@@ -58,6 +58,11 @@ def prepare_output(plan, *, resume: bool) -> CheckpointLog:
     log = CheckpointLog(out)
     fingerprint = plan.job.fingerprint()
     existing = list(out.iterdir()) if out.is_dir() else []
+    if resume and not log.exists() and [p.name for p in existing] == [STATE_DIR]:
+        # A run stopped before its checkpoint existed committed no part: nothing to keep,
+        # so resuming it is starting it afresh.
+        shutil.rmtree(out / STATE_DIR)
+        existing = []
     if existing:
         if resume and log.exists():
             recorded = json.loads((out / STATE_DIR / JOB_FILE).read_text())

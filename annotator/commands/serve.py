@@ -1,0 +1,121 @@
+"""``annotator serve --root DIR --data-root PATH``: run the batch service."""
+
+from __future__ import annotations
+
+import os
+import socket
+import sys
+from pathlib import Path
+
+from ..errors import ConfigError
+
+
+def add_arguments(p) -> None:
+    from ..service.client import DEFAULT_PORT, TOKEN_ENV
+
+    p.add_argument("--root", required=True, metavar="DIR",
+                   help="service root: the job ledger and one folder per job (created if absent)")
+    p.add_argument("--data-root", action="append", default=[], metavar="PATH", dest="data_roots",
+                   help="folder inputs may be read from (repeat for several); required")
+    p.add_argument("--host", default="127.0.0.1",
+                   help="address to listen on (default 127.0.0.1; anything but loopback "
+                        "needs --token)")
+    p.add_argument("--port", type=int, default=DEFAULT_PORT,
+                   help=f"port (default {DEFAULT_PORT}; 0 picks a free one, written to "
+                        f"DIR/service.json)")
+    p.add_argument("--workers", type=int, default=1, metavar="N",
+                   help="jobs executing at once, each in its own process (default 1)")
+    p.add_argument("--token", default=None,
+                   help=f"bearer token required on every request (default: ${TOKEN_ENV})")
+    p.add_argument("--token-file", default=None, metavar="FILE",
+                   help="read the token from FILE (keeps it out of the process list)")
+    p.add_argument("--max-request-bytes", type=int, default=1 << 20, metavar="N",
+                   help="largest job file accepted (default 1 MiB)")
+    p.add_argument("--max-crashes", type=int, default=3, metavar="N",
+                   help="times a job's worker may die before the job ends in ERROR (default 3)")
+    p.add_argument("--log-level", default="info",
+                   choices=("critical", "error", "warning", "info", "debug"))
+
+
+def _token(args) -> str | None:
+    from ..service.client import TOKEN_ENV
+
+    if args.token_file:
+        try:
+            token = Path(args.token_file).read_text(encoding="utf-8").strip()
+        except OSError as exc:
+            raise ConfigError(f"--token-file {args.token_file}: cannot read it: {exc}") from None
+        if not token:
+            raise ConfigError(f"--token-file {args.token_file}: the file is empty")
+        return token
+    return args.token or os.environ.get(TOKEN_ENV) or None
+
+
+def _bind(host: str, port: int) -> socket.socket:
+    try:
+        infos = socket.getaddrinfo(host, port, type=socket.SOCK_STREAM, flags=socket.AI_PASSIVE)
+    except socket.gaierror as exc:
+        raise ConfigError(f"--host {host}: cannot resolve it: {exc}") from None
+    family, kind, proto, _, address = infos[0]
+    sock = socket.socket(family, kind, proto)
+    sock.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)
+    try:
+        sock.bind(address)
+    except OSError as exc:
+        sock.close()
+        raise ConfigError(f"--host {host} --port {port}: cannot listen there: {exc}") from None
+    sock.listen(128)
+    return sock
+
+
+def _url(sock: socket.socket) -> str:
+    host, port = sock.getsockname()[:2]
+    if ":" in host:
+        host = f"[{host}]"
+    return f"http://{host}:{port}"
+
+
+def main(args) -> int:
+    import uvicorn
+
+    from ..service.app import ServiceConfig, create_app
+    from ..service.security import check_bind, resolve_data_roots
+    from ..service.workers import acquire_lock
+    from ..provenance import write_json_atomic
+
+    if not 1 <= args.workers <= 64:
+        raise ConfigError(f"--workers: {args.workers} is outside 1 to 64")
+    if not 1024 <= args.max_request_bytes <= 64 << 20:
+        raise ConfigError(f"--max-request-bytes: {args.max_request_bytes} is outside 1024 to "
+                          f"{64 << 20}")
+    if args.max_crashes < 1:
+        raise ConfigError("--max-crashes: expected at least 1")
+    token = _token(args)
+    check_bind(args.host, token)
+    data_roots = resolve_data_roots(args.data_roots)
+    root = Path(args.root).expanduser().resolve()
+    if root.exists() and not root.is_dir():
+        raise ConfigError(f"--root {root}: exists and is not a folder")
+    root.mkdir(parents=True, exist_ok=True)
+    lock = acquire_lock(root / "service.lock")
+    if lock is None:
+        other = (root / "service.lock").read_text().strip()
+        raise ConfigError(f"--root {root}: another service (pid {other or 'unknown'}) is "
+                          f"using this root; stop it first or choose another --root")
+    sock = _bind(args.host, args.port)
+    url = _url(sock)
+    config = ServiceConfig(root=root, data_roots=data_roots, token=token,
+                           workers=args.workers, max_request_bytes=args.max_request_bytes,
+                           max_crashes=args.max_crashes)
+    app = create_app(config)
+    write_json_atomic({"url": url, "pid": os.getpid(), "root": str(root),
+                       "data_roots": [str(r) for r in data_roots], "workers": args.workers,
+                       "token_required": bool(token)}, root / "service.json")
+    print(f"annotator: serving {root} on {url} ({args.workers} worker"
+          f"{'s' if args.workers != 1 else ''}; inputs under "
+          f"{', '.join(map(str, data_roots))})", file=sys.stderr, flush=True)
+    server = uvicorn.Server(uvicorn.Config(
+        app, log_level=args.log_level, lifespan="on", limit_concurrency=256,
+        timeout_graceful_shutdown=10, server_header=False))
+    server.run(sockets=[sock])
+    return 0

@@ -1,0 +1,372 @@
+"""The HTTP JSON API of the batch service (FastAPI).
+
+Routes (every answer is JSON; errors are ``{"error": "..."}`` with a 4xx/5xx status):
+
+* ``GET /health`` - the service is up: version, workers, jobs per phase.
+* ``POST /jobs`` - submit a job file: TOML text (``Content-Type: application/toml`` or
+  ``text/plain``) or the same mapping as JSON (``application/json``). Query parameters:
+  ``name`` (a label), ``base_dir`` (absolute folder that relative paths are resolved
+  against, normally the job file's folder). 201 with the job; 4xx with the reason.
+* ``GET /jobs`` - ``{"jobs": [...], "counts": {phase: n}}``, oldest first; ``?phase=``.
+* ``GET /jobs/{id}`` - one job, with its manifest once COMPLETED and its history.
+* ``POST /jobs/{id}/abort`` - to ABORTED (its worker process is killed); 409 if it has ended.
+"""
+
+from __future__ import annotations
+
+import json
+import sys
+import threading
+import time
+from contextlib import asynccontextmanager
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from fastapi import FastAPI, HTTPException, Request
+from fastapi.concurrency import run_in_threadpool
+from fastapi.exceptions import RequestValidationError
+from fastapi.responses import JSONResponse
+
+from .. import __version__
+from ..errors import ConfigError, UserError
+from .ledger import ACTIVE, FINAL, PHASES, Ledger
+from .security import AccessError, check_input_files, check_input_paths, token_matches
+from .workers import WorkerPool, manifest_of
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover
+    import tomli as tomllib
+
+MAX_REQUEST_BYTES = 1 << 20
+MAX_NAME_CHARS = 200
+JOBS_DIR = "jobs"
+TOML_TYPES = ("", "application/toml", "text/toml", "text/x-toml", "text/plain",
+              "application/octet-stream")
+JSON_TYPES = ("application/json",)
+
+
+@dataclass
+class ServiceConfig:
+    """How one service runs.
+
+    :ivar root: the service root: ledger, and one folder per job under ``jobs/``.
+    :ivar data_roots: resolved folders inputs must lie under.
+    :ivar token: bearer token required on every request (None: no token, loopback only).
+    :ivar workers: jobs executing at once.
+    :ivar max_request_bytes: largest request body accepted (a job file).
+    :ivar max_crashes: times a job's worker may die before the job ends in ERROR.
+    """
+
+    root: Path
+    data_roots: list[Path]
+    token: str | None = None
+    workers: int = 1
+    max_request_bytes: int = MAX_REQUEST_BYTES
+    max_crashes: int = 3
+    started_at: float = field(default_factory=time.time)
+
+    @property
+    def jobs_dir(self) -> Path:
+        return self.root / JOBS_DIR
+
+
+class _RequestTooLarge(Exception):
+    pass
+
+
+class Guard:
+    """ASGI middleware: the bearer token (when set) and the request-size limit, on every request.
+
+    A declared ``Content-Length`` over the limit is refused before the body is read; a body
+    sent without one is counted as it arrives (see :func:`_read_body`).
+    """
+
+    def __init__(self, app, token: str | None, max_bytes: int):
+        self.app, self.token, self.max_bytes = app, token, max_bytes
+
+    async def __call__(self, scope, receive, send):
+        if scope["type"] != "http":
+            return await self.app(scope, receive, send)
+        headers = {k.lower(): v for k, v in scope.get("headers", [])}
+        if self.token is not None:
+            given = headers.get(b"authorization", b"").decode("latin-1")
+            if not token_matches(given, self.token):
+                return await _send_json(send, 401, {
+                    "error": "this service needs a token: send 'Authorization: Bearer <token>' "
+                             "(annotator submit/jobs/abort --token, or ANNOTATOR_SERVICE_TOKEN)"},
+                    extra=[(b"www-authenticate", b"Bearer")])
+        length = headers.get(b"content-length")
+        if length is not None:
+            try:
+                declared = int(length)
+            except ValueError:
+                return await _send_json(send, 400, {"error": "Content-Length is not a number"})
+            if declared > self.max_bytes:
+                return await _send_json(send, 413, {"error": _too_large(self.max_bytes)})
+        return await self.app(scope, receive, send)
+
+
+async def _send_json(send, status: int, payload: dict, extra=()) -> None:
+    body = json.dumps(payload).encode()
+    await send({"type": "http.response.start", "status": status,
+                "headers": [(b"content-type", b"application/json"),
+                            (b"content-length", str(len(body)).encode()), *extra]})
+    await send({"type": "http.response.body", "body": body})
+
+
+def _too_large(limit: int) -> str:
+    return (f"request body over the limit of {limit} bytes (a job file names its catalogues; "
+            f"it does not carry them)")
+
+
+async def _read_body(request: Request, limit: int) -> bytes:
+    body = bytearray()
+    async for chunk in request.stream():
+        body += chunk
+        if len(body) > limit:
+            raise HTTPException(413, _too_large(limit))
+    return bytes(body)
+
+
+def parse_job_body(body: bytes, content_type: str | None) -> dict:
+    """The job mapping from a request body (TOML text or JSON)."""
+    ctype = (content_type or "").split(";")[0].strip().lower()
+    if ctype not in TOML_TYPES + JSON_TYPES:
+        raise HTTPException(415, f"Content-Type {ctype!r}: send the job file as "
+                                 f"application/toml (or text/plain), or its mapping as "
+                                 f"application/json")
+    if not body.strip():
+        raise ConfigError("job: the request body is empty; send the job file (TOML) or the "
+                          "same mapping as JSON")
+    try:
+        text = body.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise ConfigError(f"job: the request body is not UTF-8 text ({exc})") from None
+    if ctype in JSON_TYPES:
+        try:
+            data = json.loads(text)
+        except json.JSONDecodeError as exc:
+            raise ConfigError(f"job: not valid JSON: {exc}") from None
+    else:
+        try:
+            data = tomllib.loads(text)
+        except tomllib.TOMLDecodeError as exc:
+            raise ConfigError(f"job: not valid TOML: {exc}") from None
+    if not isinstance(data, dict):
+        raise ConfigError("job: expected a table of sections ([input], [output], ...)")
+    return data
+
+
+@dataclass
+class Submission:
+    """A job that passed every check, ready for the ledger."""
+
+    stored: dict  # the mapping the worker runs: inputs absolute, no [output].dir
+    base_dir: str
+    notes: list[str]
+    rows_total: int | None
+    plan: dict
+
+
+def validate_submission(mapping: dict, *, base_dir: str | None, config: ServiceConfig,
+                        pm=None) -> Submission:
+    """Every check a job passes before it is accepted; raises a UserError naming the key.
+
+    Nothing outside the data roots is opened: paths are checked before the plan reads the
+    catalogues' schemas.
+    """
+    from ..config import job_from_mapping
+    from ..io.readers import expand_inputs
+    from ..plan import build_plan
+
+    notes: list[str] = []
+    if base_dir is not None and not Path(base_dir).is_absolute():
+        raise ConfigError(f"base_dir: {base_dir!r} is not an absolute folder")
+    output = mapping.get("output")
+    stored = json.loads(json.dumps(mapping))  # a deep copy that is sure to be JSON
+    if isinstance(output, dict):
+        if "dir" in output:
+            notes.append(f"[output].dir {output['dir']!r} ignored: the service writes each "
+                         f"job's output to its own folder under {config.jobs_dir}")
+        if "overwrite" in output:
+            notes.append("[output].overwrite ignored: each job has a fresh output folder")
+        stored["output"] = {k: v for k, v in output.items() if k not in ("dir", "overwrite")}
+    placeholder = config.jobs_dir / "_validating" / "output"
+    base = Path(base_dir) if base_dir else config.jobs_dir
+    job = job_from_mapping(stored, base_dir=base, output_dir=str(placeholder))
+
+    raw = stored.get("input", {}).get("paths", [])
+    raw = [raw] if isinstance(raw, str) else list(raw)
+    if base_dir is None:
+        for item in raw:
+            if not Path(item).expanduser().is_absolute():
+                raise ConfigError(
+                    f"[input].paths: {item!r} is relative and no base_dir was given; send "
+                    f"absolute paths (annotator submit resolves relative ones against the job "
+                    f"file's folder)")
+    check_input_paths(raw, job.inputs, config.data_roots)
+    check_input_files(expand_inputs(job.inputs, job.input_format), config.data_roots)
+    job.allowed_roots = tuple(config.data_roots)
+    plan = build_plan(job, pm)
+    stored.setdefault("input", {})["paths"] = [str(p) for p in job.inputs]
+    summary = {
+        "inputs": [str(s.path) for s in plan.sources],
+        "annotators": [s.name for s in plan.steps],
+        "columns_added": [c.name for c in plan.added_columns],
+        "estimated_rows": plan.estimated_rows,
+        "chunk_rows": job.chunk_rows,
+    }
+    return Submission(stored, str(job.base_dir), notes, plan.estimated_rows, summary)
+
+
+def _status_of(exc: UserError) -> int:
+    """403 for a path the service may not touch; 400 for anything else wrong with the job."""
+    return 403 if isinstance(exc, AccessError) else 400
+
+
+def create_app(config: ServiceConfig) -> FastAPI:
+    """The FastAPI application; starts the scheduler on startup, stops it on shutdown."""
+    config.root.mkdir(parents=True, exist_ok=True)
+    config.jobs_dir.mkdir(exist_ok=True)
+    ledger = Ledger(config.root)
+    pool = WorkerPool(ledger, config.data_roots, workers=config.workers,
+                      max_crashes=config.max_crashes)
+    plugins = _PluginManager()
+
+    @asynccontextmanager
+    async def lifespan(app):
+        pool.start()
+        threading.Thread(target=plugins.get, name="annotator-plugins", daemon=True).start()
+        try:
+            yield
+        finally:
+            await run_in_threadpool(pool.stop)
+
+    app = FastAPI(title="annotator batch service", version=__version__, lifespan=lifespan,
+                  docs_url=None, redoc_url=None)
+    app.add_middleware(Guard, token=config.token, max_bytes=config.max_request_bytes)
+    app.state.ledger, app.state.pool, app.state.config = ledger, pool, config
+
+    @app.exception_handler(HTTPException)
+    async def http_error(request, exc: HTTPException):
+        return JSONResponse({"error": str(exc.detail)}, status_code=exc.status_code)
+
+    @app.exception_handler(404)
+    async def not_found(request, exc):
+        detail = getattr(exc, "detail", None)
+        if detail and detail != "Not Found":
+            return JSONResponse({"error": str(detail)}, status_code=404)
+        return JSONResponse({"error": f"no route {request.method} {request.url.path} "
+                                      f"(routes: /health, /jobs, /jobs/ID, /jobs/ID/abort)"},
+                            status_code=404)
+
+    @app.exception_handler(RequestValidationError)
+    async def bad_request(request, exc: RequestValidationError):
+        parts = []
+        for err in exc.errors():
+            where = ".".join(str(x) for x in err.get("loc", ()) if x not in ("query", "path"))
+            parts.append(f"{where}: {err.get('msg')}")
+        return JSONResponse({"error": "; ".join(parts) or "invalid request"}, status_code=422)
+
+    @app.exception_handler(UserError)
+    async def user_error(request, exc: UserError):
+        return JSONResponse({"error": str(exc)}, status_code=_status_of(exc))
+
+    def find(ident: str):
+        record = ledger.get(ident)
+        if record is None:
+            raise HTTPException(404, f"no job {ident!r} (ids look like job-000042; "
+                                     f"GET /jobs lists them)")
+        return record
+
+    @app.get("/health")
+    def health() -> dict:
+        return {"status": "ok", "version": __version__, "root": str(config.root),
+                "data_roots": [str(r) for r in config.data_roots],
+                "uptime_s": round(time.time() - config.started_at, 3),
+                "jobs": ledger.counts(), **pool.status()}
+
+    @app.post("/jobs", status_code=201)
+    async def submit(request: Request, name: str | None = None, base_dir: str | None = None):
+        if name is not None and (len(name) > MAX_NAME_CHARS or not name.isprintable()):
+            raise HTTPException(400, f"name: at most {MAX_NAME_CHARS} printable characters")
+        body = await _read_body(request, config.max_request_bytes)
+        mapping = parse_job_body(body, request.headers.get("content-type"))
+        checked = await run_in_threadpool(
+            lambda: validate_submission(mapping, base_dir=base_dir, config=config,
+                                        pm=plugins.get()))
+        suffix = ".json" if request.headers.get("content-type", "").startswith(JSON_TYPES) \
+            else ".toml"
+        record = await run_in_threadpool(_accept, ledger, config, checked, name, body, suffix)
+        pool.wake()
+        answer = record.to_api()
+        answer["plan"] = checked.plan
+        return JSONResponse(answer, status_code=201, headers={"Location": f"/jobs/{record.id}"})
+
+    @app.get("/jobs")
+    def list_jobs(phase: str | None = None, limit: int | None = None) -> dict:
+        if phase is not None and phase.upper() not in PHASES:
+            raise HTTPException(400, f"phase: {phase!r} is not one of {', '.join(PHASES)}")
+        if limit is not None and limit < 1:
+            raise HTTPException(400, "limit: expected a positive number")
+        records = ledger.list(phase=phase.upper() if phase else None, limit=limit)
+        return {"jobs": [r.to_api() for r in records], "counts": ledger.counts()}
+
+    @app.get("/jobs/{ident}")
+    def get_job(ident: str) -> dict:
+        record = find(ident)
+        answer = record.to_api()
+        answer["manifest"] = manifest_of(record) if record.phase == "COMPLETED" else None
+        answer["history"] = ledger.history(record.id)
+        return answer
+
+    @app.post("/jobs/{ident}/abort")
+    def abort_job(ident: str) -> dict:
+        record = find(ident)
+        if not ledger.abort(record.id):
+            record = find(ident)
+            raise HTTPException(409, f"job {record.id} is already {record.phase}; only "
+                                     f"{', '.join(ACTIVE)} jobs can be aborted")
+        pool.wake()
+        return find(ident).to_api()
+
+    return app
+
+
+class _PluginManager:
+    """One plugin manager for validating submissions, loaded once (plugins installed later
+    are seen after a restart; workers load their own)."""
+
+    def __init__(self):
+        self._pm = None
+        self._lock = threading.Lock()
+
+    def get(self):
+        with self._lock:
+            if self._pm is None:
+                from ..registry import get_plugin_manager
+
+                self._pm = get_plugin_manager()
+            return self._pm
+
+
+def _accept(ledger: Ledger, config: ServiceConfig, checked: Submission, name: str | None,
+            body: bytes, suffix: str):
+    """Record the job (PENDING), write its folder, then queue it."""
+    record = ledger.create(name=name, job=checked.stored, base_dir=checked.base_dir,
+                           notes=checked.notes, jobs_dir=config.jobs_dir,
+                           rows_total=checked.rows_total)
+    try:
+        folder = Path(record.folder)
+        folder.mkdir(parents=True, exist_ok=False)
+        (folder / f"submitted{suffix}").write_bytes(body)
+        (folder / "job.json").write_text(json.dumps(checked.stored, indent=2) + "\n")
+    except OSError as exc:
+        ledger.fail(record.id, f"could not create the job folder: {exc}", from_phases=("PENDING",))
+        raise HTTPException(500, f"job {record.id}: could not create its folder: {exc}") from exc
+    ledger.queue(record.id)
+    return ledger.get(record.id)
+
+
+__all__ = ["ServiceConfig", "create_app", "parse_job_body", "validate_submission", "FINAL"]

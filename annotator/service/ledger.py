@@ -1,0 +1,375 @@
+"""The job ledger: one SQLite database under the service root, in WAL mode.
+
+The service (HTTP threads and the scheduler) and every worker process open their own
+connection; each change is one short transaction, so a ``kill -9`` of any of them leaves the
+ledger as of its last committed change. Phases are the IVOA UWS names.
+
+Every phase change is guarded by the phase it leaves (``UPDATE ... WHERE phase = ?``), so two
+writers racing (a worker finishing while a user aborts) cannot both win.
+"""
+
+from __future__ import annotations
+
+import json
+import sqlite3
+import threading
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+PENDING, QUEUED, EXECUTING = "PENDING", "QUEUED", "EXECUTING"
+COMPLETED, ERROR, ABORTED = "COMPLETED", "ERROR", "ABORTED"
+PHASES = (PENDING, QUEUED, EXECUTING, COMPLETED, ERROR, ABORTED)
+ACTIVE = (PENDING, QUEUED, EXECUTING)
+FINAL = (COMPLETED, ERROR, ABORTED)
+
+LEDGER_FILE = "ledger.sqlite"
+SCHEMA_VERSION = 1
+JOB_ID_PREFIX = "job-"
+
+_SCHEMA = """
+CREATE TABLE IF NOT EXISTS meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS jobs (
+    seq INTEGER PRIMARY KEY AUTOINCREMENT,
+    id TEXT UNIQUE,
+    name TEXT,
+    phase TEXT NOT NULL,
+    job_json TEXT NOT NULL,
+    base_dir TEXT NOT NULL,
+    folder TEXT,
+    output_dir TEXT,
+    notes TEXT NOT NULL DEFAULT '[]',
+    submitted_at REAL NOT NULL,
+    started_at REAL,
+    finished_at REAL,
+    updated_at REAL NOT NULL,
+    rows_done INTEGER NOT NULL DEFAULT 0,
+    rows_total INTEGER,
+    parts_done INTEGER NOT NULL DEFAULT 0,
+    rows_per_second REAL,
+    eta_s REAL,
+    runs INTEGER NOT NULL DEFAULT 0,
+    crashes INTEGER NOT NULL DEFAULT 0,
+    worker_pid INTEGER,
+    error TEXT,
+    manifest_path TEXT
+);
+CREATE INDEX IF NOT EXISTS jobs_by_phase ON jobs (phase, seq);
+CREATE TABLE IF NOT EXISTS events (
+    n INTEGER PRIMARY KEY AUTOINCREMENT,
+    job_seq INTEGER NOT NULL REFERENCES jobs (seq),
+    at REAL NOT NULL,
+    phase TEXT NOT NULL,
+    message TEXT NOT NULL
+);
+CREATE INDEX IF NOT EXISTS events_by_job ON events (job_seq, n);
+"""
+
+
+def job_id(seq: int) -> str:
+    return f"{JOB_ID_PREFIX}{seq:06d}"
+
+
+def job_seq(identifier: str) -> int | None:
+    """The ledger key of a job id (``job-000042`` -> 42), or None if it is not one."""
+    if not identifier.startswith(JOB_ID_PREFIX):
+        return None
+    digits = identifier[len(JOB_ID_PREFIX):]
+    return int(digits) if digits.isdigit() else None
+
+
+def _iso(t: float | None) -> str | None:
+    if t is None:
+        return None
+    return time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(t)) + f".{int(t % 1 * 1000):03d}Z"
+
+
+@dataclass
+class JobRecord:
+    """One row of the ledger, as the API reports it."""
+
+    seq: int
+    id: str
+    name: str | None
+    phase: str
+    job: dict
+    base_dir: str
+    folder: str | None
+    output_dir: str | None
+    notes: list[str]
+    submitted_at: float
+    started_at: float | None
+    finished_at: float | None
+    updated_at: float
+    rows_done: int
+    rows_total: int | None
+    parts_done: int
+    rows_per_second: float | None
+    eta_s: float | None
+    runs: int
+    crashes: int
+    worker_pid: int | None
+    error: str | None
+    manifest_path: str | None
+
+    @classmethod
+    def from_row(cls, row: sqlite3.Row) -> JobRecord:
+        d = dict(row)
+        d["job"] = json.loads(d.pop("job_json"))
+        d["notes"] = json.loads(d["notes"])
+        return cls(**d)
+
+    def to_api(self) -> dict:
+        """The JSON the HTTP API returns for this job (the manifest is added by the caller)."""
+        return {
+            "id": self.id,
+            "name": self.name,
+            "phase": self.phase,
+            "rows_done": self.rows_done,
+            "rows_total": self.rows_total,
+            "parts_done": self.parts_done,
+            "rows_per_second": self.rows_per_second,
+            "eta_s": self.eta_s,
+            "output": self.output_dir,
+            "manifest_path": self.manifest_path,
+            "error": self.error,
+            "notes": list(self.notes),
+            "runs": self.runs,
+            "crashes": self.crashes,
+            "worker_pid": self.worker_pid if self.phase == EXECUTING else None,
+            "submitted_at": _iso(self.submitted_at),
+            "started_at": _iso(self.started_at),
+            "finished_at": _iso(self.finished_at),
+            "updated_at": _iso(self.updated_at),
+        }
+
+
+class Ledger:
+    """Access to the ledger; safe to share between threads (one connection per thread)."""
+
+    def __init__(self, root: str | Path, *, timeout_s: float = 30.0):
+        self.root = Path(root)
+        self.path = self.root / LEDGER_FILE
+        self.timeout_s = timeout_s
+        self._local = threading.local()
+        with self._connect() as con:
+            con.executescript(_SCHEMA)
+            con.execute("INSERT OR IGNORE INTO meta (key, value) VALUES ('schema_version', ?)",
+                        (str(SCHEMA_VERSION),))
+            version = con.execute("SELECT value FROM meta WHERE key = 'schema_version'"
+                                  ).fetchone()[0]
+        if int(version) != SCHEMA_VERSION:
+            from ..errors import ConfigError
+
+            raise ConfigError(f"--root {self.root}: ledger {self.path} has schema version "
+                              f"{version}; this annotator reads version {SCHEMA_VERSION}")
+
+    # -- connections ---------------------------------------------------------------------
+    def _connect(self) -> sqlite3.Connection:
+        con = getattr(self._local, "con", None)
+        if con is None:
+            con = sqlite3.connect(self.path, timeout=self.timeout_s, isolation_level=None,
+                                  check_same_thread=False)
+            con.row_factory = sqlite3.Row
+            con.execute("PRAGMA journal_mode = WAL")
+            # FULL: a committed phase change survives a power cut, not only a crash.
+            con.execute("PRAGMA synchronous = FULL")
+            con.execute("PRAGMA foreign_keys = ON")
+            self._local.con = con
+        return _Transaction(con)
+
+    def close(self) -> None:
+        con = getattr(self._local, "con", None)
+        if con is not None:
+            con.close()
+            self._local.con = None
+
+    # -- reading -------------------------------------------------------------------------
+    def get(self, identifier: str) -> JobRecord | None:
+        seq = job_seq(identifier)
+        if seq is None:
+            return None
+        with self._connect() as con:
+            row = con.execute("SELECT * FROM jobs WHERE seq = ?", (seq,)).fetchone()
+        return JobRecord.from_row(row) if row is not None and row["id"] else None
+
+    def list(self, phase: str | None = None, limit: int | None = None) -> list[JobRecord]:
+        sql, args = "SELECT * FROM jobs WHERE id IS NOT NULL", []
+        if phase:
+            sql += " AND phase = ?"
+            args.append(phase)
+        sql += " ORDER BY seq"
+        if limit:
+            sql += " LIMIT ?"
+            args.append(int(limit))
+        with self._connect() as con:
+            rows = con.execute(sql, args).fetchall()
+        return [JobRecord.from_row(r) for r in rows]
+
+    def counts(self) -> dict[str, int]:
+        with self._connect() as con:
+            rows = con.execute("SELECT phase, COUNT(*) FROM jobs WHERE id IS NOT NULL "
+                               "GROUP BY phase").fetchall()
+        out = {p: 0 for p in PHASES}
+        out.update({r[0]: r[1] for r in rows})
+        return out
+
+    def history(self, identifier: str) -> list[dict]:
+        seq = job_seq(identifier)
+        with self._connect() as con:
+            rows = con.execute("SELECT at, phase, message FROM events WHERE job_seq = ? "
+                               "ORDER BY n", (seq,)).fetchall()
+        return [{"at": _iso(r["at"]), "phase": r["phase"], "message": r["message"]} for r in rows]
+
+    # -- submission ----------------------------------------------------------------------
+    def create(self, *, name: str | None, job: dict, base_dir: str, notes: list[str],
+               jobs_dir: Path, rows_total: int | None = None) -> JobRecord:
+        """Insert a job in PENDING with its id and folder; :meth:`queue` once the folder exists."""
+        now = time.time()
+        with self._connect() as con:
+            con.execute("BEGIN IMMEDIATE")
+            cur = con.execute(
+                "INSERT INTO jobs (name, phase, job_json, base_dir, notes, rows_total, "
+                "submitted_at, updated_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                (name, PENDING, json.dumps(job), base_dir, json.dumps(notes), rows_total, now,
+                 now))
+            seq = cur.lastrowid
+            ident = job_id(seq)
+            folder = Path(jobs_dir) / ident
+            con.execute("UPDATE jobs SET id = ?, folder = ?, output_dir = ? WHERE seq = ?",
+                        (ident, str(folder), str(folder / "output"), seq))
+            self._event(con, seq, PENDING, "submitted", now)
+        return self.get(ident)
+
+    def queue(self, identifier: str, message: str = "queued") -> bool:
+        return self._move(identifier, (PENDING,), QUEUED, message)
+
+    # -- scheduling ----------------------------------------------------------------------
+    def claim_next(self) -> JobRecord | None:
+        """Move the oldest QUEUED job to EXECUTING and return it (None when the queue is empty)."""
+        now = time.time()
+        with self._connect() as con:
+            con.execute("BEGIN IMMEDIATE")
+            row = con.execute("SELECT seq FROM jobs WHERE phase = ? ORDER BY seq LIMIT 1",
+                              (QUEUED,)).fetchone()
+            if row is None:
+                con.execute("COMMIT")
+                return None
+            seq = row[0]
+            con.execute("UPDATE jobs SET phase = ?, runs = runs + 1, worker_pid = NULL, "
+                        "started_at = COALESCE(started_at, ?), rows_per_second = NULL, "
+                        "eta_s = NULL, updated_at = ? WHERE seq = ?",
+                        (EXECUTING, now, now, seq))
+            runs = con.execute("SELECT runs FROM jobs WHERE seq = ?", (seq,)).fetchone()[0]
+            self._event(con, seq, EXECUTING,
+                        "started" if runs == 1 else f"resumed (run {runs})", now)
+        return self.get(job_id(seq))
+
+    def set_worker(self, identifier: str, pid: int) -> None:
+        with self._connect() as con:
+            con.execute("UPDATE jobs SET worker_pid = ?, updated_at = ? WHERE seq = ?",
+                        (pid, time.time(), job_seq(identifier)))
+
+    def progress(self, identifier: str, *, rows_done: int, rows_total: int | None,
+                 parts_done: int, rows_per_second: float | None, eta_s: float | None) -> bool:
+        """Record progress of an EXECUTING job (ignored once it has left EXECUTING)."""
+        with self._connect() as con:
+            cur = con.execute(
+                "UPDATE jobs SET rows_done = ?, rows_total = ?, parts_done = ?, "
+                "rows_per_second = ?, eta_s = ?, updated_at = ? WHERE seq = ? AND phase = ?",
+                (rows_done, rows_total, parts_done, rows_per_second, eta_s, time.time(),
+                 job_seq(identifier), EXECUTING))
+        return cur.rowcount == 1
+
+    def complete(self, identifier: str, *, manifest_path: str, rows_done: int,
+                 rows_per_second: float | None) -> bool:
+        now = time.time()
+        with self._connect() as con:
+            con.execute("BEGIN IMMEDIATE")
+            cur = con.execute(
+                "UPDATE jobs SET phase = ?, manifest_path = ?, rows_done = ?, "
+                "rows_total = ?, rows_per_second = ?, eta_s = 0, error = NULL, "
+                "finished_at = ?, updated_at = ? WHERE seq = ? AND phase = ?",
+                (COMPLETED, manifest_path, rows_done, rows_done, rows_per_second, now, now,
+                 job_seq(identifier), EXECUTING))
+            if cur.rowcount == 1:
+                self._event(con, job_seq(identifier), COMPLETED, f"{rows_done} rows", now)
+        return cur.rowcount == 1
+
+    def fail(self, identifier: str, error: str, *, from_phases=(EXECUTING,)) -> bool:
+        now = time.time()
+        seq = job_seq(identifier)
+        marks = ",".join("?" * len(from_phases))
+        with self._connect() as con:
+            con.execute("BEGIN IMMEDIATE")
+            cur = con.execute(
+                f"UPDATE jobs SET phase = ?, error = ?, eta_s = NULL, finished_at = ?, "
+                f"updated_at = ? WHERE seq = ? AND phase IN ({marks})",
+                (ERROR, error, now, now, seq, *from_phases))
+            if cur.rowcount == 1:
+                self._event(con, seq, ERROR, error, now)
+        return cur.rowcount == 1
+
+    def abort(self, identifier: str, message: str = "aborted on request") -> bool:
+        now = time.time()
+        seq = job_seq(identifier)
+        marks = ",".join("?" * len(ACTIVE))
+        with self._connect() as con:
+            con.execute("BEGIN IMMEDIATE")
+            cur = con.execute(
+                f"UPDATE jobs SET phase = ?, eta_s = NULL, finished_at = ?, updated_at = ? "
+                f"WHERE seq = ? AND phase IN ({marks})", (ABORTED, now, now, seq, *ACTIVE))
+            if cur.rowcount == 1:
+                self._event(con, seq, ABORTED, message, now)
+        return cur.rowcount == 1
+
+    def requeue(self, identifier: str, message: str, *, crashed: bool = False) -> bool:
+        """Put an EXECUTING job back in the queue, keeping its place (submission order)."""
+        now = time.time()
+        seq = job_seq(identifier)
+        with self._connect() as con:
+            con.execute("BEGIN IMMEDIATE")
+            cur = con.execute(
+                "UPDATE jobs SET phase = ?, worker_pid = NULL, rows_per_second = NULL, "
+                "eta_s = NULL, crashes = crashes + ?, updated_at = ? WHERE seq = ? AND phase = ?",
+                (QUEUED, 1 if crashed else 0, now, seq, EXECUTING))
+            if cur.rowcount == 1:
+                self._event(con, seq, QUEUED, message, now)
+        return cur.rowcount == 1
+
+    def note(self, identifier: str, phase: str, message: str) -> None:
+        with self._connect() as con:
+            self._event(con, job_seq(identifier), phase, message, time.time())
+
+    # -- internals -----------------------------------------------------------------------
+    def _move(self, identifier: str, sources: tuple[str, ...], target: str, message: str) -> bool:
+        now = time.time()
+        seq = job_seq(identifier)
+        marks = ",".join("?" * len(sources))
+        with self._connect() as con:
+            con.execute("BEGIN IMMEDIATE")
+            cur = con.execute(f"UPDATE jobs SET phase = ?, updated_at = ? WHERE seq = ? AND "
+                              f"phase IN ({marks})", (target, now, seq, *sources))
+            if cur.rowcount == 1:
+                self._event(con, seq, target, message, now)
+        return cur.rowcount == 1
+
+    @staticmethod
+    def _event(con, seq: int, phase: str, message: str, at: float) -> None:
+        con.execute("INSERT INTO events (job_seq, at, phase, message) VALUES (?, ?, ?, ?)",
+                    (seq, at, phase, message))
+
+
+class _Transaction:
+    """``with`` on a connection in autocommit mode: COMMIT an explicit BEGIN on success,
+    ROLLBACK on error; statements outside a BEGIN commit one by one."""
+
+    def __init__(self, con: sqlite3.Connection):
+        self.con = con
+
+    def __enter__(self) -> sqlite3.Connection:
+        return self.con
+
+    def __exit__(self, exc_type, exc, tb) -> None:
+        if self.con.in_transaction:
+            self.con.execute("ROLLBACK" if exc_type else "COMMIT")
