@@ -197,8 +197,12 @@ class KCorrection(Annotator):
                 if b.magnitude_input in self.requires}
         errs = {b.name: batch.values(b.error_input) for b in self.bands
                 if b.error_input and b.error_input in self.requires}
-        z_err = batch.values("redshift_error") if "redshift_error" in self.optional \
-            and batch.has("redshift_error") else None
+        z_err = None
+        if "redshift_error" in self.optional and batch.has("redshift_error"):
+            # A negative or missing redshift error gives a null error, not a smaller one.
+            z_err = batch.values("redshift_error")
+            with np.errstate(invalid="ignore"):
+                z_err = np.where(z_err >= 0, z_err, np.nan)
         dmu_dz = self._dmu_dz(z_ok) if z_err is not None and errs else None
         out = {}
         for b in self.bands:

@@ -291,8 +291,8 @@ class Template(Method):
         return k, {OUTSIDE_Z: np.isfinite(z) & ~inside}
 
     def derivatives(self, z, colour=None):
-        idx, _, _ = self.table.grid.locate(z)
-        return self.table.derivative(0, idx), np.zeros_like(z)
+        idx, frac, _ = self.table.grid.locate(z)
+        return self.table.derivative(0, idx, frac), np.zeros_like(z)
 
 
 @dataclass(kw_only=True)
@@ -369,8 +369,11 @@ class TemplateMix(Method):
 
     def evaluate(self, z, colour):
         w, clipped, inside, a_r, b_r = self.weights(z, colour)
+        # Both templates have unit rest-frame flux in Q, so the mixture's is 1 and
+        # K = m_R(z) - m_Q(0) = -2.5 log10 of its observed maggies (which already carry the
+        # 1 / (1 + z) of the redshifted spectrum, see synthetic.py).
         with np.errstate(invalid="ignore", divide="ignore"):
-            k = -2.5 * np.log10(((1.0 - w) * a_r + w * b_r) / (1.0 + z))
+            k = -2.5 * np.log10((1.0 - w) * a_r + w * b_r)
         missing = ~np.isfinite(colour)
         k[~inside | missing] = np.nan
         return k, {OUTSIDE_Z: np.isfinite(z) & ~inside, COLOUR_MISSING: missing,

@@ -133,17 +133,20 @@ def check_coverage(sed: Curve, filt: Filter, z_max: float, *, band_key: str,
         covers = "at no redshift in that range"
     else:
         covers = f"only for z = {max(z_lo, 0):.4g} to {min(z_hi, top):.4g}"
-    fails = []
+    fails, advice = [], []
     if z_lo > 0:
-        fails.append(f"z < {z_lo:.4g} (the SED ends at {sed.last:g} A, red of the filter "
-                     f"needs {hi:g} A)")
+        fails.append(f"z < {z_lo:.4g} (the SED ends at {sed.last:g} A, the filter reaches "
+                     f"{hi:g} A)")
+        advice.append("extend the SED to the red")
     if z_hi < top:
         fails.append(f"z > {max(z_hi, 0):.4g} (the SED starts at {sed.first:g} A, the filter "
                      f"starts at {lo:g} A)")
+        advice.append(f"lower z_max to {max(z_hi, 0):.4g} or extend the SED to the blue"
+                      if not rest_frame else "extend the SED to the blue")
     raise ConfigError(
         f"{band_key}: SED {sed.path} ({sed.first:g}-{sed.last:g} A) does not cover filter "
         f"{filt.path} ({lo:g}-{hi:g} A) {frame}: it covers it {covers}; it fails for "
-        f"{' and '.join(fails)}. Lower z_max or extend the SED"
+        f"{' and '.join(fails)}; {' and '.join(advice)}"
     )
 
 
@@ -192,6 +195,7 @@ class Tabulated:
     values: np.ndarray  # (functions, n)
     slopes: np.ndarray = field(init=False)  # (functions, n - 1): per-cell differences
     max_error: float = 0.0  # largest midpoint error measured while refining
+    _knot_slopes: np.ndarray | None = field(default=None, init=False, repr=False)
 
     def __post_init__(self) -> None:
         self.slopes = np.diff(self.values, axis=1)
@@ -199,8 +203,18 @@ class Tabulated:
     def at(self, k: int, idx: np.ndarray, frac: np.ndarray) -> np.ndarray:
         return self.values[k][idx] + frac * self.slopes[k][idx]
 
-    def derivative(self, k: int, idx: np.ndarray) -> np.ndarray:
-        return self.slopes[k][idx] / self.grid.step
+    def derivative(self, k: int, idx: np.ndarray, frac: np.ndarray) -> np.ndarray:
+        """d/dz of function k: central differences at the knots, linearly interpolated
+        (second-order accurate, unlike the piecewise-constant slope of the interpolant)."""
+        if self._knot_slopes is None:
+            v = self.values
+            d = np.empty_like(v)
+            d[:, 1:-1] = (v[:, 2:] - v[:, :-2]) / 2.0
+            d[:, 0] = v[:, 1] - v[:, 0]
+            d[:, -1] = v[:, -1] - v[:, -2]
+            self._knot_slopes = d / self.grid.step
+        d = self._knot_slopes[k]
+        return d[idx] + frac * (d[idx + 1] - d[idx])
 
 
 def tabulate(functions: Sequence[Callable[[np.ndarray], np.ndarray]], z_max: float, *,
