@@ -7,6 +7,7 @@ memory on any size of output.
 
 from __future__ import annotations
 
+import decimal
 import io
 import json
 import math
@@ -77,17 +78,24 @@ def write_csv(reader: pa.RecordBatchReader, out: BinaryIO) -> int:
     """Stream CSV (header once) to a binary stream; return the rows written."""
     rows = 0
     writer = None
-    try:
-        for batch in reader:
+
+    def write(batch=None):
+        nonlocal writer
+        try:
             if writer is None:
                 writer = pacsv.CSVWriter(out, reader.schema)
-            writer.write_batch(batch)
+            if batch is not None:
+                writer.write_batch(batch)
+        except (pa.ArrowNotImplementedError, pa.ArrowInvalid, pa.ArrowTypeError) as exc:
+            raise QueryError(f"the result cannot be written as CSV ({exc}); use --format "
+                             f"json or --to FILE.parquet") from None
+
+    try:
+        for batch in reader:  # errors of the query itself propagate unchanged
+            write(batch)
             rows += batch.num_rows
         if writer is None:  # no batch at all: still the header
-            writer = pacsv.CSVWriter(out, reader.schema)
-    except pa.ArrowNotImplementedError as exc:
-        raise QueryError(f"the result cannot be written as CSV ({exc}); use --format json or "
-                         f"--to FILE.parquet") from None
+            write()
     finally:
         if writer is not None:
             writer.close()
@@ -97,6 +105,8 @@ def write_csv(reader: pa.RecordBatchReader, out: BinaryIO) -> int:
 def _jsonable(value):
     if isinstance(value, float) and not math.isfinite(value):
         return None
+    if isinstance(value, decimal.Decimal):  # SQL literals like 1.5 are DECIMAL
+        return float(value) if value.is_finite() else None
     if isinstance(value, dict):
         return {k: _jsonable(v) for k, v in value.items()}
     if isinstance(value, list):

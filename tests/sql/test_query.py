@@ -272,3 +272,24 @@ def test_a_missing_folder_or_manifest_is_a_clear_error(tmp_path):
 def test_errors_inside_a_query_are_query_errors(planck):
     with pytest.raises(QueryError, match='column "zz" not found'):
         planck.relation("SELECT zz FROM catalogue")
+
+
+def test_stdout_formats_handle_other_sql_types(outputs, capsys):
+    assert run_cli("query", outputs.main, "SELECT 1.5 AS x, [1, 2] AS l, 'nan'::DOUBLE AS n",
+                   "--format", "json") == 0
+    assert json.loads(capsys.readouterr().out) == {"x": 1.5, "l": [1, 2], "n": None}
+    assert run_cli("query", outputs.main, "SELECT [1, 2] AS l", "--format", "csv") == 2
+    err = capsys.readouterr().err
+    assert "cannot be written as CSV" in err and err.count("\n") == 1
+
+
+def test_list_functions_names_every_function_with_its_unit(outputs, capsys):
+    assert run_cli("query", outputs.main, "--list-functions") == 0
+    out = capsys.readouterr().out
+    assert "cosmology planck2018" in out
+    for name in FORWARD + ("comoving_volume_mpc3", "reachable"):
+        assert f"\n{name}(z) -> " in out
+    for name, arg in (("redshift_at_comoving_distance", "d_mpc"),
+                      ("redshift_at_lookback_time", "t_gyr"), ("redshift_at_age", "t_gyr")):
+        assert f"\n{name}({arg}) -> DOUBLE" in out
+    assert "comoving_distance_mpc(z) -> DOUBLE [Mpc]" in out
