@@ -108,8 +108,9 @@ def main(args) -> int:
     if sql == "-":
         sql = sys.stdin.read()
 
+    kind = None
     if sql and sql.strip():
-        read_only_statement(sql)  # refuse a writing statement before opening anything
+        _, kind = read_only_statement(sql)  # refuse a writing statement before opening anything
 
     with QuerySession(args.folder, attach=attach, read_paths=args.read,
                       write_to=args.to) as session:
@@ -141,7 +142,11 @@ def main(args) -> int:
             return 0
         reader = session.reader(sql)
         try:
-            if fmt == "table":
+            if fmt == "table" and kind == "EXPLAIN":
+                for batch in reader:  # the plan drawing, as DuckDB renders it
+                    for key, plan in zip(*(c.to_pylist() for c in batch.columns)):
+                        print(f"{key}:\n{plan}")
+            elif fmt == "table":
                 shown, more = write_table(reader, sys.stdout, args.max_rows)
                 if more:
                     print(f"(first {shown} rows shown; more not shown: raise --max-rows, or "

@@ -293,3 +293,14 @@ def test_list_functions_names_every_function_with_its_unit(outputs, capsys):
                       ("redshift_at_lookback_time", "t_gyr"), ("redshift_at_age", "t_gyr")):
         assert f"\n{name}({arg}) -> DOUBLE" in out
     assert "comoving_distance_mpc(z) -> DOUBLE [Mpc]" in out
+
+
+def test_explain_describe_and_summarize_are_allowed(outputs, capsys):
+    assert run_cli("query", outputs.main, "EXPLAIN SELECT count(*) FROM catalogue "
+                   "WHERE reachable(z)") == 0
+    out = capsys.readouterr().out
+    assert out.startswith("physical_plan:\n") and "reachable(z)" in out
+    assert run_cli("query", outputs.main, "SUMMARIZE SELECT z FROM catalogue",
+                   "--format", "json") == 0
+    (summary,) = [json.loads(line) for line in capsys.readouterr().out.splitlines()]
+    assert summary["column_name"] == "z" and summary["null_percentage"] is not None
