@@ -6,16 +6,15 @@
    through the real command line (both sample files: 20 000 Parquet rows and 4 000 CSV rows,
    8 of them malformed);
 2. prints the manifest's counts (rows read = written + set aside) and the columns added;
-3. runs a few SQL queries on the output with ``annotator query`` (DuckDB directly in a build
-   without that command): reachable versus unreachable galaxies, mean distances in a
-   redshift slice, the flagged rows and the rows set aside;
+3. runs a few SQL queries on the output with ``annotator query`` (DuckDB): reachable versus
+   unreachable galaxies, mean distances in a redshift slice, the flagged rows and the rows
+   set aside;
 4. prints where the output is.
 """
 
 from __future__ import annotations
 
 import argparse
-import importlib.util
 import json
 import sys
 from pathlib import Path
@@ -26,8 +25,8 @@ HERE = Path(__file__).resolve().parent
 JOB_FILE = HERE / "demo_job.toml"
 
 QUERIES = [
-    ("Galaxies whose light, emitted today, could still reach us (event-horizon reachability; "
-     "NULL = no usable redshift)",
+    ("Galaxies inside our event horizon today: light they emit now will reach us "
+     "(NULL = no usable redshift)",
      "SELECT reachable, count(*) AS galaxies FROM catalogue GROUP BY reachable "
      "ORDER BY reachable"),
     ("The redshift slice 0.9 <= z < 1.1 by SED type: mean distances and look-back time",
@@ -46,24 +45,6 @@ QUERIES = [
 
 def _section(title: str) -> None:
     print(f"\n== {title}", flush=True)
-
-
-def _duckdb_query(out: Path, sql: str) -> None:
-    """The views ``annotator query`` offers (catalogue, rejected) over the output's files."""
-    import duckdb
-
-    con = duckdb.connect()
-    parts = str(out / "*.parquet").replace("'", "''")
-    con.execute(f"CREATE VIEW catalogue AS SELECT * FROM read_parquet('{parts}')")
-    rejected = out / "rejected"
-    if any(rejected.glob("*.parquet")):
-        con.execute("CREATE VIEW rejected AS SELECT * FROM read_parquet('"
-                    + str(rejected / "*.parquet").replace("'", "''") + "')")
-    else:
-        con.execute("CREATE VIEW rejected AS SELECT NULL::VARCHAR AS source, NULL::BIGINT AS "
-                    "row, NULL::VARCHAR AS reason, NULL::VARCHAR AS raw WHERE false")
-    print(f"duckdb: {sql}")
-    con.sql(sql).show(max_width=120)
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -92,17 +73,13 @@ def main(argv: list[str] | None = None) -> int:
         unit = f" [{column['unit']}]" if column.get("unit") else ""
         print(f"  {column['name']}{unit}")
 
-    has_query_command = importlib.util.find_spec("annotator.commands.query") is not None
     for title, sql in QUERIES:
         _section(title)
-        if has_query_command:
-            print(f"annotator query {args.out} \"{sql}\"", flush=True)
-            status = cli.main(["query", str(out), sql])
-            if status:
-                print(f"demo: annotator query failed (exit status {status})", file=sys.stderr)
-                return status
-        else:  # a build without the query command: the same SQL through DuckDB directly
-            _duckdb_query(out, sql)
+        print(f"annotator query {args.out} \"{sql}\"", flush=True)
+        status = cli.main(["query", str(out), sql])
+        if status:
+            print(f"demo: annotator query failed (exit status {status})", file=sys.stderr)
+            return status
 
     parts = sorted(out.glob("*.parquet"))
     _section("Output")

@@ -16,7 +16,9 @@ What is drawn, per galaxy:
   = m_lim - mu(z) - K(z) is the faintest absolute magnitude inside the flux limit;
 * an absolute amber magnitude from the Schechter form truncated at M_lim(z) (inverse CDF);
 * apparent magnitudes in every band, m = M_amber + mu(z) + K_amber->band(z), with K from
-  synthetic photometry of the type's SED (Hogg et al. 2002, astro-ph/0210394, eq. 13);
+  synthetic photometry of the type's SED (Hogg et al. 2002, astro-ph/0210394, eqs. 8-13),
+  computed by the K-correction plugin's ``kcorrection_curve``, so the plugin's template
+  method recovers these absolute magnitudes (up to the noise);
 * positions uniform on the sphere inside the field.
 
 Then it is "observed": flux noise that grows towards each band's depth (a null magnitude for
@@ -56,7 +58,7 @@ if __package__ in (None, ""):  # run as a script: make the repository importable
     sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 from annotator.cosmology import Cosmology, CosmologyError, preset  # noqa: E402
-from sample_catalogues.photometry import kcorrection_table, read_curve  # noqa: E402
+from annotator_plugins.kcorrection.synthetic import kcorrection_curve  # noqa: E402
 
 HERE = Path(__file__).resolve().parent
 SURVEY_NAME = "Quillfield Deep Survey"
@@ -106,6 +108,7 @@ MISSING_Z_FRACTION = 0.005
 SPEC_FRACTION_BY_MAG = ((20.5, 0.85), (22.0, 0.5), (23.0, 0.1))
 LOCAL_FRACTION = 2.5e-4  # nearby blueshifted galaxies
 LOCAL_MIN_ROWS = 3
+LOCAL_TYPE_FRACTIONS = (0.15, 0.35, 0.5)  # early, intermediate, starforming: mostly dwarfs
 
 
 @dataclass(frozen=True)
@@ -169,6 +172,32 @@ def schema() -> pa.Schema:
     fields.append(pa.field("sed_type", pa.string(), False,
                            {"unit": "", "description": "SED template the object was drawn from"}))
     return pa.schema(fields)
+
+
+class CurveError(ValueError):
+    """A filter or SED file of this folder that cannot be used (names the file and line)."""
+
+
+def read_curve(path: str | Path, value_name: str) -> tuple[np.ndarray, np.ndarray]:
+    """A two-column CSV ``wavelength_angstrom,<value_name>``: increasing wavelengths and
+    finite, non-negative values."""
+    path = Path(path)
+    try:
+        with path.open() as fh:
+            header = fh.readline().strip()
+        data = np.loadtxt(path, delimiter=",", skiprows=1, ndmin=2)
+    except (OSError, ValueError) as exc:
+        raise CurveError(f"{path}: not a readable two-column numeric CSV ({exc})") from exc
+    if header != f"wavelength_angstrom,{value_name}" or data.shape[1] != 2 or len(data) < 2:
+        raise CurveError(f"{path}: expected a header 'wavelength_angstrom,{value_name}' and "
+                         f"at least two rows of two numbers")
+    wl, values = data[:, 0], data[:, 1]
+    for bad, why in ((~np.isfinite(data).all(axis=1), "a value that is not finite"),
+                     (np.r_[False, np.diff(wl) <= 0], "a wavelength that does not increase"),
+                     (values < 0, f"a negative {value_name}")):
+        if bad.any():
+            raise CurveError(f"{path}: line {int(np.flatnonzero(bad)[0]) + 2}: {why}")
+    return wl, values
 
 
 def schechter_shape(delta_mag: np.ndarray, alpha: float) -> np.ndarray:
@@ -263,7 +292,8 @@ class SurveyModel:
         rows = []
         for t in self.types:
             swl, sf = self.seds[t.name]
-            rows += [kcorrection_table(swl, sf, *self.filters[b], z, qwl, qr) for b in BANDS]
+            rows += [kcorrection_curve(swl, sf, *self.filters[b], z, rest_filter=(qwl, qr))
+                     for b in BANDS]
         return UniformTables(z[0], z[-1], np.stack(rows))
 
     def kcorrection(self, type_name: str, band: str, z: np.ndarray) -> np.ndarray:
@@ -382,7 +412,7 @@ class SurveyModel:
     def draw_local(self, rng: np.random.Generator, n: int) -> dict[str, np.ndarray]:
         """``n`` nearby galaxies approaching us (invented): distance 0.6-3.5 Mpc, velocity
         -60 to -360 km/s (negative z), M_amber -18 to -11."""
-        type_index = rng.choice(len(self.types), n, p=[0.15, 0.35, 0.5]).astype(np.intp)
+        type_index = rng.choice(len(self.types), n, p=LOCAL_TYPE_FRACTIONS).astype(np.intp)
         distance_mpc = rng.uniform(0.6, 3.5, n)
         z = -rng.uniform(60.0, 360.0, n) / 299792.458
         abs_mag = rng.uniform(-18.0, -11.0, n)

@@ -204,7 +204,7 @@ def test_redshift_errors(gen):
 
 def test_generator_is_deterministic_for_a_seed(tmp_path, gen, survey_model):
     a = gen.generate(3000, tmp_path / "a.parquet", seed=11, model=survey_model)
-    b = gen.generate(3000, tmp_path / "b.parquet", seed=11)  # a fresh model
+    b = gen.generate(3000, tmp_path / "b.parquet", seed=11, model=survey_model)
     c = gen.generate(3000, tmp_path / "c.parquet", seed=12, model=survey_model)
     ta, tb, tc = (pq.read_table(tmp_path / f"{n}.parquet") for n in "abc")
     assert ta.equals(tb)
