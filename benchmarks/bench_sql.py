@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import shutil
 import sys
 import tempfile
@@ -128,8 +129,9 @@ def main(argv=None) -> int:
     if args.json:
         print(json.dumps(results, indent=2, default=float))
         return 0
+    load = ", ".join(f"{v:.1f}" for v in os.getloadavg())
     print(f"{args.rows:,}-row annotated output, cosmology {cosmo.name}; best of "
-          f"{args.repeats}")
+          f"{args.repeats}; {os.cpu_count()} cores, load average {load}")
     for r in results:
         print(f"  {r['case']:<72} {r['rows']:>11,} rows {r['seconds']:>8.3f} s "
               f"{r['rows_per_second'] / 1e6:>9.2f} M rows/s")

@@ -13,12 +13,16 @@ def add_arguments(p) -> None:
 
 def describe_output(folder) -> dict:
     """Everything ``annotator describe`` shows, as a dict."""
+    import pyarrow.parquet as pq
+
     from ..sql.metadata import OutputFolder
 
     out = OutputFolder.open(folder)
     m = out.manifest
     cosmo = m.get("cosmology") or {}
     on_disk = sum(p.stat().st_size for p in out.parts)
+    rows_in_parts = sum(pq.ParquetFile(p).metadata.num_rows for p in out.parts)
+    rows_in_rejected = sum(pq.ParquetFile(p).metadata.num_rows for p in out.rejected_parts)
     flags = m.get("flags") or {}
     return {
         "folder": str(out.path),
@@ -26,7 +30,11 @@ def describe_output(folder) -> dict:
         "counts": {k: m.get(k) for k in ("rows_read", "rows_written", "rows_rejected",
                                          "rows_flagged")},
         "parts": {"files": len(out.parts), "rejected_files": len(out.rejected_parts),
-                  "bytes": on_disk},
+                  "bytes": on_disk, "rows": rows_in_parts, "rejected_rows": rows_in_rejected},
+        "reconciles": (m.get("rows_read") == (m.get("rows_written") or 0)
+                       + (m.get("rows_rejected") or 0)
+                       and rows_in_parts == m.get("rows_written")
+                       and rows_in_rejected == m.get("rows_rejected")),
         "inputs": [{k: i.get(k) for k in ("path", "format", "rows_read", "rows_written",
                                            "rows_rejected", "sha256")}
                    for i in m.get("inputs", [])],
@@ -69,8 +77,11 @@ def render(d: dict) -> str:
     lines.append(f"  rows: read {c['rows_read']}, written {c['rows_written']}, set aside "
                  f"{c['rows_rejected']}, flagged {c['rows_flagged']}")
     p = d["parts"]
-    lines.append(f"  parts: {p['files']} files ({p['bytes']:,} bytes), {p['rejected_files']} "
-                 f"files of rows set aside")
+    lines.append(f"  parts: {p['files']} files ({p['bytes']:,} bytes, {p['rows']} rows), "
+                 f"{p['rejected_files']} files of rows set aside ({p['rejected_rows']} rows)")
+    lines.append("  counts reconcile: read = written + set aside, and the files hold them"
+                 if d["reconciles"] else
+                 "  WARNING: the counts do not reconcile (manifest against part files)")
     for i in d["inputs"]:
         sha = (i.get("sha256") or "")[:12]
         lines.append(f"  input {i['path']} ({i['format']}): read {i['rows_read']}, written "

@@ -17,6 +17,7 @@ def test_describe_json_agrees_with_the_manifest_and_the_part_files(outputs, caps
     assert d["counts"] == {k: manifest[k] for k in ("rows_read", "rows_written",
                                                     "rows_rejected", "rows_flagged")}
     assert d["parts"]["files"] == len(manifest["parts"]) == 3
+    assert d["parts"]["rows"] == 5000 and d["reconciles"] is True
     assert d["cosmology"]["name"] == "planck2018"
     assert d["cosmology"]["parameters"] == manifest["cosmology"]["parameters"]
     assert [a["name"] for a in d["annotators"]] == [a["name"] for a in manifest["annotators"]]
@@ -37,6 +38,7 @@ def test_describe_text(outputs, capsys):
     out = capsys.readouterr().out
     assert "cosmology planck2018" in out
     assert "rows: read 3002, written 3000, set aside 2" in out
+    assert "counts reconcile" in out and "(2 rows)" in out
     assert "comoving_distance_mpc" in out and "pos.distance;phys.cosmology" in out
     assert "annotators: redshift_checks" in out
 
