@@ -32,6 +32,10 @@ DEC_NAMES = ("dec", "dec_deg", "decdeg", "dej2000", "decj2000", "dec_j2000", "de
 REDSHIFT_READERS = ("reachable", "comoving_distance_mpc", "distance_modulus_mag",
                     "luminosity_distance_mpc", "lookback_time_gyr")
 
+# Redshifts above this are beyond any survey (galaxies, quasars, bursts); a maximum above it
+# makes the histogram check for a few wild values before choosing its range.
+TAIL_REDSHIFT = 20.0
+
 # Codes of the reachability array of a sample.
 REACHABLE, UNREACHABLE, UNKNOWN = 1, 0, -1
 
@@ -164,7 +168,9 @@ def open_output(folder: str | Path) -> Output:
 def _connect():
     import duckdb
 
-    return duckdb.connect(database=":memory:")
+    con = duckdb.connect(database=":memory:")
+    con.execute("SET enable_progress_bar = false")  # the report prints its own one line
+    return con
 
 
 def _usable(z: str) -> str:
@@ -221,22 +227,27 @@ def redshift_aggregate(out: Output, event_horizon_redshift: float | None,
                        count(*) FILTER (WHERE {ok} AND {reach}),
                        count(*) FILTER (WHERE {ok} AND NOT {reach}),
                        min({z}) FILTER (WHERE {ok}),
-                       max({z}) FILTER (WHERE {ok}),
-                       quantile_disc({z}, 0.999) FILTER (WHERE {ok})
+                       max({z}) FILTER (WHERE {ok})
                 FROM read_parquet(?)""", [files]).fetchone()
-        rows, usable, n_reach, n_unreach, z_min, z_max, z_999 = row
+        rows, usable, n_reach, n_unreach, z_min, z_max = row
         if not usable:
             edges = np.linspace(0.0, 1.0, bins + 1)
             zeros = np.zeros(bins, dtype=np.int64)
             return RedshiftAggregate(rows, 0, None if source == "none" else 0,
                                      None if source == "none" else 0, source, None, None,
                                      edges, zeros, zeros.copy(), zeros.copy(), 0)
-        # A few wild redshifts must not squash the histogram: the range ends at the 99.9th
-        # percentile when the maximum lies far beyond it, and always shows the event horizon.
-        upper = float(z_max) if z_max <= 2.0 * float(z_999) else float(z_999)
+        # A few wild redshifts must not squash the histogram: beyond any survey's reach
+        # (TAIL_REDSHIFT), the range ends at the 99.5th percentile when the maximum lies far
+        # beyond it. (Only then: an exact quantile costs a sort of the column.)
+        upper = float(z_max)
+        if upper > TAIL_REDSHIFT:
+            z_995 = con.execute(f"SELECT quantile_disc({z}, 0.995) FROM read_parquet(?) "
+                                f"WHERE {ok}", [files]).fetchone()[0]
+            if upper > 2.0 * float(z_995):
+                upper = float(z_995)
         if event_horizon_redshift is not None and np.isfinite(event_horizon_redshift) \
                 and event_horizon_redshift < 50:
-            upper = max(upper, 1.15 * float(event_horizon_redshift))
+            upper = max(upper, 1.15 * float(event_horizon_redshift))  # the horizon shows
         upper = upper if upper > 0 else 1.0
         width = upper / bins
         if event_horizon_redshift is not None and np.isfinite(event_horizon_redshift) \
@@ -245,19 +256,23 @@ def redshift_aggregate(out: Output, event_horizon_redshift: float | None,
             width = float(event_horizon_redshift) / max(1, round(event_horizon_redshift / width))
         bins = int(math.ceil(upper / width - 1e-9))
         upper = bins * width
+        # One pass: bin -1 collects the redshifts beyond the range.
         hist = con.execute(
-            f"""SELECT least(CAST(floor({z} / ?) AS BIGINT), ?) AS b,
+            f"""SELECT CASE WHEN {z} > ? THEN -1
+                            ELSE least(CAST(floor({z} / ?) AS BIGINT), ?) END AS b,
                        {reach} AS r, count(*)
-                FROM read_parquet(?) WHERE {ok} AND {z} <= ?
-                GROUP BY ALL""", [width, bins - 1, files, upper]).fetchall()
-        above = con.execute(f"SELECT count(*) FROM read_parquet(?) WHERE {ok} AND {z} > ?",
-                            [files, upper]).fetchone()[0]
+                FROM read_parquet(?) WHERE {ok}
+                GROUP BY ALL""", [upper, width, bins - 1, files]).fetchall()
     finally:
         con.close()
     counts = {True: np.zeros(bins, np.int64), False: np.zeros(bins, np.int64),
               None: np.zeros(bins, np.int64)}
+    above = 0
     for b, r, n in hist:
-        counts[r][int(b)] += n
+        if b < 0:
+            above += n
+        else:
+            counts[r][int(b)] += n
     known = source != "none"
     return RedshiftAggregate(
         rows=int(rows), usable=int(usable),

@@ -434,6 +434,9 @@ def sky_map(ra: np.ndarray, dec: np.ndarray, reach: np.ndarray, seed: int) -> by
         lon = np.radians(-(np.mod(ra + 180.0, 360.0) - 180.0))  # RA 0 in the middle, east left
         if len(ra):
             ax.scatter(lon, np.radians(dec), s=size, c=colours, linewidths=0, alpha=0.7)
+        else:
+            ax.text(0.0, 0.35, "no objects in the sample", ha="center", va="center",
+                    color=GREY, fontsize=10)
         ticks = np.arange(-150, 181, 30)
         ax.set_xticks(np.radians(ticks))
         from matplotlib import patheffects

@@ -294,6 +294,30 @@ def test_histogram_counts_every_row(full):
     assert agg.edges[-1] >= derived["event_horizon_redshift"]
 
 
+def test_a_few_wild_redshifts_do_not_squash_the_histogram(tmp_path):
+    from annotator.report.data import redshift_aggregate
+
+    table = make_catalogue(1200)
+    z = table.column("z").to_numpy(zero_copy_only=False).copy()
+    z[100], z[200] = 4.0e4, 7.5e5  # two wild values among z < 3
+    table = table.set_column(table.schema.get_field_index("z"), "z", pa.array(z))
+    cat = tmp_path / "cat.parquet"
+    pq.write_table(table, cat)
+    out = tmp_path / "out"
+    assert _run(cat, "--out", out) == 0
+    derived = json.loads((out / "manifest.json").read_text())["cosmology"]["derived"]
+    agg = redshift_aggregate(open_output(out), derived["event_horizon_redshift"], True)
+    assert agg.edges[-1] < 4.0 and agg.above_range == 2 and agg.z_max == 7.5e5
+    usable = z[np.isfinite(z) & (z >= 0)]
+    expected, _ = np.histogram(usable, bins=agg.edges)  # numpy as the reference
+    total = agg.counts_reachable + agg.counts_unreachable + agg.counts_unknown
+    assert np.array_equal(total, expected) and total.sum() + 2 == len(usable)
+    # the event-horizon redshift is a bin edge (no bin mixes the two classes)
+    k = int(np.argmin(np.abs(agg.edges - derived["event_horizon_redshift"])))
+    assert agg.edges[k] == pytest.approx(derived["event_horizon_redshift"], rel=1e-12)
+    assert agg.counts_unreachable[:k].sum() == 0 and agg.counts_reachable[k:].sum() == 0
+
+
 def test_gly_conversions_follow_the_iau_definitions(full):
     """Distances shown in Gly: 1 pc = 648000/pi au, au = 149 597 870 700 m (IAU 2012 B2,
     2015 B2); light-year = c * Julian year (365.25 d); c = 299 792 458 m/s (SI)."""
