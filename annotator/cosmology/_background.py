@@ -117,10 +117,12 @@ class Background:
                 logs.append(lnpref - 4.0 * x + np.logaddexp(0.0, arg) / KOMATSU_P)
                 slopes.append(-4.0 + _sigmoid(arg))
                 signs.append(1.0)
-        logs = np.broadcast_arrays(*logs)
-        big = np.max(logs, axis=0)
-        total = np.zeros_like(big)
-        dtotal = np.zeros_like(big)
+        logs = [np.broadcast_to(lg, x.shape) for lg in logs]
+        big = logs[0]
+        for lg in logs[1:]:
+            big = np.maximum(big, lg)
+        total = np.zeros(x.shape)
+        dtotal = np.zeros(x.shape)
         with np.errstate(over="ignore", invalid="ignore"):
             for lg, sg, sl in zip(logs, signs, slopes):
                 w = sg * np.exp(lg - big)

@@ -92,6 +92,12 @@ class UniformTable:
 _GL_CACHE = {}
 
 
+def _leggauss(order):
+    if order not in _GL_CACHE:
+        _GL_CACHE[order] = np.polynomial.legendre.leggauss(order)
+    return _GL_CACHE[order]
+
+
 def gauss_legendre_intervals(edges, integrand, order=8):
     """Integrals of integrand(x) over each interval [edges[i], edges[i+1]].
 
@@ -101,9 +107,7 @@ def gauss_legendre_intervals(edges, integrand, order=8):
     degree 2*order-1; the intervals are short compared with every feature of the
     integrands, so the result is accurate to rounding).
     """
-    if order not in _GL_CACHE:
-        _GL_CACHE[order] = np.polynomial.legendre.leggauss(order)
-    nodes, weights = _GL_CACHE[order]
+    nodes, weights = _leggauss(order)
     lo, hi = edges[:-1], edges[1:]
     half = 0.5 * (hi - lo)
     mid = 0.5 * (hi + lo)
@@ -134,18 +138,56 @@ def hermite_nonuniform(xk, yk, dk, x):
     return val, der
 
 
-def invert_monotone(xk, fk, dfk, targets, newton_steps=3):
-    """Solve f(x) = target for x, f tabulated (fk, dfk) on nodes xk, increasing.
+def quintic_nonuniform(xk, yk, dk, d2k, x):
+    """Quintic Hermite interpolant through values, first and second derivatives.
 
-    The first guess is the Hermite interpolant of the inverse function (nodes fk,
-    values xk, derivatives 1/dfk); Newton steps on the forward interpolant then make
-    the answer consistent with it to rounding.  Targets outside the range give NaN.
+    Error O(h^6); used at build time to solve for grid nodes of derived tables.
+    Returns (value, derivative); points outside [xk[0], xk[-1]] give NaN.
+    """
+    x = np.asarray(x, dtype=float)
+    i = np.clip(np.searchsorted(xk, x, side="right") - 1, 0, len(xk) - 2)
+    h = xk[i + 1] - xk[i]
+    t = (x - xk[i]) / h
+    t2 = t * t
+    t3 = t2 * t
+    t4 = t3 * t
+    t5 = t4 * t
+    b0 = 1 - 10 * t3 + 15 * t4 - 6 * t5
+    b1 = t - 6 * t3 + 8 * t4 - 3 * t5
+    b2 = 0.5 * (t2 - 3 * t3 + 3 * t4 - t5)
+    b3 = 0.5 * (t3 - 2 * t4 + t5)
+    b4 = -4 * t3 + 7 * t4 - 3 * t5
+    b5 = 10 * t3 - 15 * t4 + 6 * t5
+    db0 = -30 * t2 + 60 * t3 - 30 * t4
+    db1 = 1 - 18 * t2 + 32 * t3 - 15 * t4
+    db2 = 0.5 * (2 * t - 9 * t2 + 12 * t3 - 5 * t4)
+    db3 = 0.5 * (3 * t2 - 8 * t3 + 5 * t4)
+    db4 = -12 * t2 + 28 * t3 - 15 * t4
+    db5 = -db0
+    y0, y1 = yk[i], yk[i + 1]
+    d0, d1 = dk[i] * h, dk[i + 1] * h
+    s0, s1 = d2k[i] * h * h, d2k[i + 1] * h * h
+    val = y0 * b0 + d0 * b1 + s0 * b2 + s1 * b3 + d1 * b4 + y1 * b5
+    der = (y0 * db0 + d0 * db1 + s0 * db2 + s1 * db3 + d1 * db4 + y1 * db5) / h
+    bad = (x < xk[0]) | (x > xk[-1]) | ~np.isfinite(x)
+    if np.any(bad):
+        val = np.where(bad, np.nan, val)
+        der = np.where(bad, np.nan, der)
+    return val, der
+
+
+def invert_monotone(xk, fk, dfk, d2fk, targets, newton_steps=2):
+    """Solve f(x) = target for x, f tabulated (fk, dfk, d2fk) on nodes xk, increasing.
+
+    The first guess is the cubic Hermite interpolant of the inverse function (nodes
+    fk, values xk, derivatives 1/dfk); Newton steps on the quintic forward interpolant
+    then converge to its root, so the answer carries the O(h^6) forward error only.
+    Targets outside the range give NaN.
     """
     targets = np.asarray(targets, dtype=float)
     x, _ = hermite_nonuniform(fk, xk, 1.0 / dfk, targets)
     for _ in range(newton_steps):
-        f, df = hermite_nonuniform(xk, fk, dfk, np.clip(x, xk[0], xk[-1]))
+        f, df = quintic_nonuniform(xk, fk, dfk, d2fk, np.clip(x, xk[0], xk[-1]))
         x = x - (f - targets) / df
     out_of_range = (targets < fk[0]) | (targets > fk[-1])
     return np.where(out_of_range, np.nan, np.clip(x, xk[0], xk[-1]))
-

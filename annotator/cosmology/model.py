@@ -13,6 +13,12 @@ from scipy.optimize import minimize_scalar
 from . import constants as k
 from ._background import Background
 from ._build import EXT_WIDTH, U_MAX, Tables
+
+# Tables are refined (grid spacing halved, up to MAX_REFINE times) until their measured
+# interpolation error is below ERROR_BUDGET; only near-pathological models (e.g. an
+# expansion that nearly stalls) ever need it.
+ERROR_BUDGET = 5e-9
+MAX_REFINE = 2
 from .errors import CosmologyError
 
 PARAMETERS = ("h0", "omega_m", "omega_de", "omega_b", "t_cmb", "n_eff", "m_nu", "w0", "wa")
@@ -27,8 +33,8 @@ RANGES = {
     "t_cmb": (0.0, 100.0, True, True, "K"),
     "n_eff": (0.0, 20.0, True, True, ""),
     "m_nu": (0.0, 10.0, True, True, "eV per species"),
-    "w0": (-5.0, 5.0, True, True, ""),
-    "wa": (-5.0, 5.0, True, True, ""),
+    "w0": (-3.0, 1.0, True, True, ""),
+    "wa": (-3.0, 3.0, True, True, ""),
 }
 
 _CHUNK = 16384
@@ -100,6 +106,13 @@ class Cosmology:
         self._m_nu = self._check_m_nu(m_nu)
         self._w0 = _number("w0", w0)
         self._wa = _number("wa", wa)
+        if self._w0 + self._wa > 0.0:
+            raise CosmologyError(
+                "wa: w0 + wa (the dark-energy equation of state at early times) must be <= 0, "
+                "so that dark energy never dominates the early universe; got w0 + wa = "
+                f"{self._w0 + self._wa:g}",
+                parameter="wa",
+            )
         if name is not None and not isinstance(name, str):
             raise CosmologyError(f"name must be a string or None; got {type(name).__name__}",
                                  parameter="name")
@@ -352,6 +365,7 @@ class Cosmology:
             "hubble_sphere_redshift": t.hubble_sphere_redshift,
             "end_of_time_gyr": fin(t.end_of_time_gyr),
             "z_max_tabulated": t.z_max,
+            "interpolation_error_estimate": t.error_estimate,
         }
 
     # --------------------------------------------------- vectorised quantities
@@ -460,8 +474,14 @@ class _ScaledTables:
     """The tables of one cosmology, in Mpc / Gyr, and the chunked evaluation kernels."""
 
     def __init__(self, cosmo):
-        tb = Tables(cosmo._bg)
+        for refine in range(MAX_REFINE + 1):
+            tb = Tables(cosmo._bg, refine=refine)
+            err, _ = tb.error_estimate()
+            if err <= ERROR_BUDGET:
+                break
         self.raw = tb
+        self.refine = refine
+        self.error_estimate = err
         dh = cosmo.hubble_distance_mpc
         th = cosmo.hubble_time_gyr
         self.dh, self.th = dh, th
@@ -511,7 +531,8 @@ class _ScaledTables:
         self.eta_inf = tb.eta_inf
         self.cross_at_zero = tb.t_end * th
         self.r_invalid = -0.5 / tb.eta0
-        self.inv_t0_gyr = 1.0 / self.age_today_gyr
+        self.k_inv_t = tb.k_inv_t
+        self.r_invalid_t = -0.5 / tb.k_inv_t
 
     # Each kernel maps a chunk of input to a chunk of output using scratch buffers.
     def run(self, x, what):
@@ -611,23 +632,24 @@ class _ScaledTables:
         np.expm1(oc, out=oc)
 
     def _k_inv_lookback(self, tc, oc, v, w, idx, cbuf):
-        np.multiply(tc, -self.inv_t0_gyr, out=v)
-        np.fmin(v, 1.0, out=v)
-        np.log1p(v, out=v)
-        np.negative(v, out=v)
-        np.copyto(w, v)
-        self.inv_t.eval_into(v, oc, idx, cbuf)
-        np.multiply(oc, w, out=oc)  # table holds u / v
-        np.expm1(oc, out=oc)
+        # w = ln(1 + k r), r = t_L / (t0 - t_L); invalid t_L -> r = -0.5/k -> below the table
+        np.subtract(self.age_today_gyr, tc, out=v)
+        np.divide(tc, v, out=v)
+        self._inv_t_tail(v, oc, w, idx, cbuf)
 
     def _k_inv_age(self, tc, oc, v, w, idx, cbuf):
-        np.divide(tc, self.age_today_gyr, out=v)  # exact 1 at t = t0
-        np.fmin(v, 2.0, out=v)  # NaN -> 2 -> t > t0 -> below the table
-        np.log(v, out=v)
-        np.negative(v, out=v)
+        # r = t_L / t_e = t0 / t - 1 (exactly 0 at t = t0)
+        np.divide(self.age_today_gyr, tc, out=v)
+        np.subtract(v, 1.0, out=v)
+        self._inv_t_tail(v, oc, w, idx, cbuf)
+
+    def _inv_t_tail(self, v, oc, w, idx, cbuf):
+        np.fmax(v, self.r_invalid_t, out=v)
+        np.multiply(v, self.k_inv_t, out=v)
+        np.log1p(v, out=v)
         np.copyto(w, v)
         self.inv_t.eval_into(v, oc, idx, cbuf)
-        np.multiply(oc, w, out=oc)  # table holds u / v
+        np.multiply(oc, w, out=oc)  # table holds u / w
         np.expm1(oc, out=oc)
 
 

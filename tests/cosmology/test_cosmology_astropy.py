@@ -69,3 +69,16 @@ def test_against_astropy(name):
             err = err[~tiny]
         worst[mine] = float(np.max(err))
     assert max(worst.values()) <= TOL, worst
+
+
+@pytest.mark.parametrize("mine,theirs", [("planck2018", "Planck18"), ("planck2015", "Planck15"),
+                                         ("wmap9", "WMAP9")])
+def test_presets_match_astropy_realizations(mine, theirs):
+    # the preset numbers against astropy's own realizations of the same papers
+    from annotator.cosmology import preset
+
+    c, a = preset(mine), getattr(acosmo, theirs)
+    z = np.array([0.1, 1.0, 3.0, 1089.92])
+    np.testing.assert_allclose(c.comoving_distance_mpc(z), a.comoving_distance(z).value,
+                               rtol=TOL)
+    assert c.age_today_gyr == pytest.approx(a.age(0).value, rel=TOL)

@@ -52,6 +52,20 @@ def test_flat_closure_negative_dark_energy():
     assert err.value.parameter == "omega_de"
 
 
+def test_early_dark_energy_refused():
+    with pytest.raises(CosmologyError, match="w0 \\+ wa") as err:
+        Cosmology(w0=-0.5, wa=0.8)
+    assert err.value.parameter == "wa"
+
+
+def test_refinement_of_a_near_loitering_model():
+    # closed, strongly phantom: the expansion nearly stalls near z ~ 0.65, so the
+    # tables are refined until their measured error is within budget
+    c = Cosmology(h0=70.0, omega_m=0.3, t_cmb=2.7255, w0=-2.6, omega_de=1.22)
+    est = c.derived()["interpolation_error_estimate"]
+    assert 0 < est <= 1e-7
+
+
 def test_refused_models():
     with pytest.raises(CosmologyError, match="no big bang"):
         Cosmology(omega_m=0.3, omega_de=2.0)  # closed, Lambda-dominated: a bounce
