@@ -310,7 +310,8 @@ class TemplateMix(Method):
     """
 
     colour: tuple[str, str]
-    table: Tabulated  # rows: A_R, B_R, A_p, B_p, A_q, B_q (maggies, unit rest-frame flux)
+    table: Tabulated  # per distinct filter u: A_u, B_u (maggies, unit rest-frame flux)
+    columns: tuple[int, int, int]  # distinct-filter index of R, p and q
     sed_paths: tuple[str, str]
     z_max: float
     kind: ClassVar[str] = "template_mix"
@@ -319,21 +320,33 @@ class TemplateMix(Method):
     def build(cls, seds: tuple[Curve, Curve], filt: Filter, rest: Filter,
               colour: tuple[str, str], colour_filters: tuple[Filter, Filter], z_max: float,
               key: str, tolerance: float) -> "TemplateMix":
+        # The band is often one of the colour's bands (r with g - r): tabulate each distinct
+        # filter once.
+        distinct: list[Filter] = []
+        columns = []
+        for f in (filt, *colour_filters):
+            same = [i for i, d in enumerate(distinct) if d.path == f.path
+                    and np.array_equal(d.wave, f.wave) and np.array_equal(d.value, f.value)]
+            if not same:
+                distinct.append(f)
+            columns.append(same[0] if same else len(distinct) - 1)
+        scales = []
+        for sed in seds:
+            rest_maggies = float(_shape_maggies(sed, rest, np.zeros(1))[0])
+            _check_flux(np.array([rest_maggies]), np.zeros(1), sed, rest, key)
+            scales.append(rest_maggies)
         functions = []
-        for filt_x in (filt, *colour_filters):
-            for sed in seds:
-                rest_maggies = float(_shape_maggies(sed, rest, np.zeros(1))[0])
-                _check_flux(np.array([rest_maggies]), np.zeros(1), sed, rest, key)
-
-                def f(z, sed=sed, filt_x=filt_x, scale=rest_maggies):
+        for filt_x in distinct:
+            for sed, scale in zip(seds, scales):
+                def f(z, sed=sed, filt_x=filt_x, scale=scale):
                     m = _shape_maggies(sed, filt_x, z)
                     _check_flux(m, z, sed, filt_x, key)
                     return m / scale
 
                 functions.append(f)
         table = tabulate(functions, z_max, error=_maggies_error, tolerance=tolerance)
-        return cls(colour=colour, table=table, sed_paths=(seds[0].path, seds[1].path),
-                   z_max=z_max)
+        return cls(colour=colour, table=table, columns=tuple(columns),
+                   sed_paths=(seds[0].path, seds[1].path), z_max=z_max)
 
     def flag_suffixes(self):
         out = super().flag_suffixes()
@@ -351,18 +364,21 @@ class TemplateMix(Method):
                 f"{self.z_max:g}")
 
     def weights(self, z: np.ndarray, colour: np.ndarray):
-        """Mixture weight w of template B per row, with the flux table lookups."""
+        """Mixture weight w of template B per row, with the band's fluxes of both templates."""
         idx, frac, inside = self.table.grid.locate(z)
         t = self.table
-        a_r, b_r = t.at(0, idx, frac), t.at(1, idx, frac)
-        a_p, b_p = t.at(2, idx, frac), t.at(3, idx, frac)
-        a_q, b_q = t.at(4, idx, frac), t.at(5, idx, frac)
-        rho = np.power(10.0, -0.4 * colour)
+        r, p, q = self.columns
+        a_r, b_r = t.at(2 * r, idx, frac), t.at(2 * r + 1, idx, frac)
+        a_p, b_p = (a_r, b_r) if p == r else (t.at(2 * p, idx, frac), t.at(2 * p + 1, idx, frac))
+        a_q, b_q = (a_r, b_r) if q == r else (t.at(2 * q, idx, frac), t.at(2 * q + 1, idx, frac))
+        rho = np.exp((-0.4 * LN10) * colour)
         a = a_p - rho * a_q
         b = b_p - rho * b_q
-        denom = a - b
         with np.errstate(invalid="ignore", divide="ignore"):
-            w = np.where(np.abs(denom) > 1e-12 * (np.abs(a) + np.abs(b)), a / denom, 0.5)
+            w = a / (a - b)
+            # Templates of equal colour at this z leave w undetermined (0/0): take the middle;
+            # an infinite w (observed colour not theirs) is clipped below.
+            w[np.isnan(w) & np.isfinite(colour)] = 0.5
             clipped = (w < -1e-9) | (w > 1.0 + 1e-9)
         np.clip(w, 0.0, 1.0, out=w)
         return w, clipped, inside, a_r, b_r
@@ -372,8 +388,12 @@ class TemplateMix(Method):
         # Both templates have unit rest-frame flux in Q, so the mixture's is 1 and
         # K = m_R(z) - m_Q(0) = -2.5 log10 of its observed maggies (which already carry the
         # 1 / (1 + z) of the redshifted spectrum, see synthetic.py).
+        b_r -= a_r
+        b_r *= w
+        b_r += a_r  # (1 - w) A_R + w B_R
         with np.errstate(invalid="ignore", divide="ignore"):
-            k = -2.5 * np.log10((1.0 - w) * a_r + w * b_r)
+            k = np.log10(b_r)
+        k *= -2.5
         missing = ~np.isfinite(colour)
         k[~inside | missing] = np.nan
         return k, {OUTSIDE_Z: np.isfinite(z) & ~inside, COLOUR_MISSING: missing,
