@@ -18,10 +18,11 @@ import pyarrow.csv as pacsv
 
 from . import QueryError
 
-CELL_WIDTH = 40
+CELL_WIDTH = 40  # a wider text is cut, except in the last column (nothing to its right)
+LAST_CELL_WIDTH = 200
 
 
-def _cell(value) -> str:
+def _cell(value, width: int = CELL_WIDTH) -> str:
     if value is None:
         return "NULL"
     if isinstance(value, bool):
@@ -31,7 +32,7 @@ def _cell(value) -> str:
             return "NaN"
         return f"{value:.6g}"
     text = str(value).replace("\n", "\\n")
-    return text if len(text) <= CELL_WIDTH else text[:CELL_WIDTH - 1] + "…"
+    return text if len(text) <= width else text[:width - 1] + "…"
 
 
 def _numeric(typ: pa.DataType) -> bool:
@@ -50,7 +51,9 @@ def write_table(reader: pa.RecordBatchReader, out: TextIO, max_rows: int) -> tup
     for batch in reader:
         take = min(batch.num_rows, max_rows + 1 - len(rows))
         cols = [batch.column(i).slice(0, take).to_pylist() for i in range(batch.num_columns)]
-        rows.extend([_cell(c[r]) for c in cols] for r in range(take))
+        last = len(cols) - 1
+        rows.extend([_cell(c[r], LAST_CELL_WIDTH if i == last else CELL_WIDTH)
+                     for i, c in enumerate(cols)] for r in range(take))
         if len(rows) > max_rows:
             rows = rows[:max_rows]
             more = True
