@@ -1,7 +1,7 @@
 """The engine against astropy.cosmology, a general-purpose reference library
 (test-only dependency; the engine never imports it).
 
-Requirement: relative error <= 1e-6 for the model set of conftest.MODELS (flat, open,
+Requirement: relative error <= 1e-6 for the model set of _cosmo_models.MODELS (flat, open,
 closed; with and without radiation and massive neutrinos; constant and evolving w).
 """
 
@@ -10,7 +10,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from conftest import MODELS, built
+from _cosmo_models import MODELS, built
 
 acosmo = pytest.importorskip("astropy.cosmology")
 u = pytest.importorskip("astropy.units")

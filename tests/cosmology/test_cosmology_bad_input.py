@@ -7,7 +7,7 @@ import warnings
 import numpy as np
 import pytest
 
-from conftest import built
+from _cosmo_models import built
 
 from annotator.cosmology import preset
 

@@ -2,7 +2,7 @@
 
 Requirement: relative error <= 1e-8 at random redshifts from 0 to 1e4, for flat,
 open and closed models, with and without radiation and massive neutrinos, constant
-and evolving w (the model set of conftest.MODELS).  The reference
+and evolving w (the model set of _cosmo_models.MODELS).  The reference
 (_cosmo_reference.py) writes E(z) out from the raw parameters and integrates with
 scipy.integrate.quad at epsrel = 1e-13.
 """
