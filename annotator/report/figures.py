@@ -109,6 +109,12 @@ def _finite(x) -> bool:
     return x is not None and isinstance(x, (int, float)) and math.isfinite(x)
 
 
+def _objects_label(code: int, derived: dict) -> str:
+    if code == REACHABLE and derived.get("event_horizon_mpc") is None:
+        return "catalogue objects, all reachable (this model has no event horizon)"
+    return f"catalogue objects, {REACH_STYLE[code]['label']}"
+
+
 def _point_size(n: int) -> float:
     return 9.0 if n <= 2_000 else 5.0 if n <= 10_000 else 3.0
 
@@ -155,7 +161,7 @@ def distance_redshift(cosmology, derived: dict, z_sample: np.ndarray | None,
                     st = REACH_STYLE[code]
                     ax.scatter(z_sample[sel], d_sample[sel], s=size * 3, c=st["color"],
                                marker=st["marker"], alpha=0.6, linewidths=0, zorder=4,
-                               label=f"catalogue objects, {st['label']}")
+                               label=_objects_label(code, derived))
         ax.plot(z, d_c, color=BLACK, lw=1.8, ls="-", label="comoving distance $D_C$", zorder=3)
         ax.plot(z, d_l, color=BLUE, lw=1.8, ls="--", label="luminosity distance $D_L$", zorder=3)
         ax.plot(z, d_a, color=VERMILLION, lw=1.8, ls="-.",
@@ -308,7 +314,7 @@ def hubble_diagram(cosmology, derived: dict, z_sample: np.ndarray | None,
                     kw = {"s": size * 3, "c": st["color"], "marker": st["marker"],
                           "alpha": 0.6, "linewidths": 0, "zorder": 4}
                     top.scatter(z_sample[sel], mu_sample[sel],
-                                label=f"catalogue objects, {st['label']}", **kw)
+                                label=_objects_label(code, derived), **kw)
                     residual = mu_sample[sel] - empty_universe_distance_modulus_mag(
                         z_sample[sel], h0)
                     bottom.scatter(z_sample[sel], residual, **kw)

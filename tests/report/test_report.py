@@ -146,8 +146,9 @@ def bare(tmp_path_factory):
     # Einstein-de Sitter (Omega_m = 1, no dark energy): no event horizon, every object
     # reachable; Hubble sphere at z = 3 (v = 2c(1 - 1/sqrt(1+z)), e.g. Davis & Lineweaver
     # 2004, PASA 21, 97, section 3).
+    # The horizons annotator is off: reachability then comes from the redshift and the model.
     job.write_text('[cosmology]\nname = "einstein-de-sitter"\nh0 = 70.0\nomega_m = 1.0\n'
-                   'omega_de = 0.0\n', encoding="utf-8")
+                   'omega_de = 0.0\n\n[annotators]\nhorizons = false\n', encoding="utf-8")
     out = base / "out"
     assert _run(cat, "--out", out, "--config", job) == 0
     report = base / "report.html"
@@ -198,7 +199,7 @@ def test_every_figure_decodes(full):
 
 
 def test_bare_output_skips_figures_with_a_note(bare):
-    _, report, page, manifest = bare
+    out, report, page, manifest = bare
     figs = figures_of(page)
     assert set(figs) == {"distance-redshift", "redshift-distribution", "hubble-diagram"}
     skipped = {a["data-skipped"] for _, a in page.tags if "data-skipped" in a}
@@ -207,6 +208,11 @@ def test_bare_output_skips_figures_with_a_note(bare):
     assert "No row was set aside" in text
     assert manifest["rows_rejected"] == 0
     assert manifest["cosmology"]["derived"]["event_horizon_mpc"] is None
+    assert "reachable" not in pq.read_schema(next(out.glob("part-*.parquet"))).names
+    values = {r["attrs"]["data-key"]: json.loads(r["attrs"]["data-value"]) for r in page.keyed}
+    # no event horizon: every object with a usable redshift stays reachable
+    assert values["aggregate/reachable"] == values["aggregate/usable_redshift"] == 1495
+    assert values["aggregate/unreachable"] == 0
 
 
 # ----------------------------------------------------------------- numbers vs manifest
