@@ -49,6 +49,7 @@ and on every worker (a shared filesystem); a check on each worker says so before
 
 from __future__ import annotations
 
+import hashlib
 import math
 import os
 import pickle
@@ -61,6 +62,7 @@ from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
+import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
@@ -76,9 +78,14 @@ from .local import _prefetch
 WORKER_WAIT_S = 300.0
 #: Seconds to wait for the scheduler to answer.
 CONNECT_TIMEOUT_S = 30.0
+#: How long a new run waits for tasks of an earlier run on the same output folder that are
+#: still running on the cluster (a driver that died leaves them; each finishes its one chunk).
+EARLIER_TASKS_WAIT_S = 600.0
 #: Tasks kept queued per worker thread: enough that no worker waits for the driver, few enough
 #: that a 10^10-row job never puts tens of thousands of tasks (or, for CSV, chunks) in flight.
 TASKS_PER_THREAD = 2
+#: Rows of the input that the driver and every worker annotate before the run, to compare.
+PROBE_ROWS = 256
 
 # Counters of this process when it is a worker: how many pipelines it prepared (built tables
 # for) and how many chunks it committed. ``worker_stats`` reads them, e.g. through
@@ -154,12 +161,34 @@ def reset_worker_stats() -> None:
         _worker_counts[key] = 0
 
 
-def _worker_check(pipeline_blob: bytes, output_dir: str, inputs: list[str]) -> dict:
-    """Run on each worker before any work: can it load the job's code and see the files?"""
-    problem = None
+def first_differing_column(a: pa.Table, b: pa.Table) -> str | None:
+    """The first column whose type, nulls or values (floats bit for bit) differ; else None."""
+    if a.schema.names != b.schema.names or a.num_rows != b.num_rows:
+        return "(the columns or the number of rows)"
+    for name in a.column_names:
+        x, y = a.column(name).combine_chunks(), b.column(name).combine_chunks()
+        if x.type != y.type or not x.is_null().equals(y.is_null()):
+            return name
+        if pa.types.is_floating(x.type):
+            bits = np.dtype(f"u{x.type.bit_width // 8}")
+            same = np.array_equal(np.asarray(x.fill_null(0)).view(bits),
+                                  np.asarray(y.fill_null(0)).view(bits))
+        else:
+            same = x.equals(y)
+        if not same:
+            return name
+    return None
+
+
+def _worker_check(pipeline_blob: bytes, output_dir: str, inputs: list[str],
+                  probe: pa.Table | None) -> dict:
+    """Run on each worker before any work: can it load the job's code and see the files, and
+    does it annotate a probe of the input exactly as the driver does?"""
+    problem, annotated = None, None
     try:
-        pickle.loads(pipeline_blob)
+        pipeline = pickle.loads(pipeline_blob)
     except Exception as exc:  # a plugin or a dependency missing on the worker
+        pipeline = None
         problem = (f"cannot load the job's annotators ({type(exc).__name__}: {exc}); install "
                    f"the same annotator and plugin packages on every worker")
     if problem is None and not Path(output_dir).is_dir():
@@ -173,7 +202,10 @@ def _worker_check(pipeline_blob: bytes, output_dir: str, inputs: list[str]) -> d
                 problem = (f"cannot see input {path} (it must be on a filesystem shared by the "
                            f"driver and every worker)")
                 break
-    return {"annotator": __version__, "host": socket.gethostname(), "problem": problem}
+    if problem is None and probe is not None:
+        annotated = pipeline.annotate(probe)[0]
+    return {"annotator": __version__, "host": socket.gethostname(), "problem": problem,
+            "probe": annotated}
 
 
 # --------------------------------------------------------------------- driver side
@@ -263,21 +295,74 @@ def connect(scheduler: str | None = None, workers: int | None = None):
         client.close()
 
 
+def _probe(plan) -> pa.Table | None:
+    """The first rows of the first input: what the driver and each worker annotate to prove
+    they compute the same thing (same code, same libraries) before any part is written."""
+    job = plan.job
+    for source in plan.sources:
+        if source.format == "parquet":
+            if _parquet_chunk_count(source, PROBE_ROWS):
+                return read_parquet_chunk(source, 0, PROBE_ROWS, plan.catalogue_schema).table
+            continue
+        reader = open_reader(source, delimiter=job.delimiter, column_types=job.column_types)
+        for chunk in reader.chunks(PROBE_ROWS, target=plan.catalogue_schema):
+            return chunk.table
+    return None
+
+
 def _check_workers(client, pipeline: Pipeline, plan, output_dir: Path) -> None:
     inputs = [str(s.path) for s in plan.sources if s.format == "parquet"]
+    probe = _probe(plan)
+    expected = pipeline.annotate(probe)[0] if probe is not None else None
     try:
-        answers = client.run(_worker_check, pickle.dumps(pipeline), str(output_dir), inputs)
+        answers = client.run(_worker_check, pickle.dumps(pipeline), str(output_dir), inputs,
+                             probe)
     except Exception as exc:
         raise ConfigError(f"--engine dask: the workers cannot run annotator's code "
                           f"({type(exc).__name__}: {exc}); install the same annotator and "
                           f"plugin packages on every worker") from exc
     for address, answer in sorted(answers.items()):
+        where = f"Dask worker {address} on {answer['host']}"
         if answer["problem"]:
-            raise ConfigError(f"Dask worker {address} on {answer['host']}: {answer['problem']}")
+            raise ConfigError(f"{where}: {answer['problem']}")
         if answer["annotator"] != __version__:
-            raise ConfigError(f"Dask worker {address} on {answer['host']}: runs annotator "
-                              f"{answer['annotator']}, this driver {__version__}; the results "
-                              f"would not be those of one version (install the same everywhere)")
+            raise ConfigError(f"{where}: runs annotator {answer['annotator']}, this driver "
+                              f"{__version__}; the results would not be those of one version "
+                              f"(install the same everywhere)")
+        if expected is not None:
+            column = first_differing_column(expected, answer["probe"])
+            if column is not None:
+                raise ConfigError(
+                    f"{where}: annotates the first {probe.num_rows} rows of the input "
+                    f"differently from this driver (column {column!r}); it runs other code or "
+                    f"libraries (install the same annotator, plugins, numpy and scipy on the "
+                    f"driver and every worker, and restart workers after an upgrade)")
+
+
+def output_tag(output_dir: Path) -> str:
+    """Part of every task key: which output folder the task writes to."""
+    return hashlib.sha1(str(output_dir).encode()).hexdigest()[:10]
+
+
+def _wait_for_earlier_tasks(client, tag: str) -> None:
+    """Let the tasks of an earlier run on this folder finish before this run touches it.
+
+    When a driver dies, the scheduler drops its queued tasks, but tasks already running go on
+    and commit their part. A resumed run must not start writing (or clearing the temporaries
+    of) the same parts meanwhile."""
+    prefix = f"annotator-{tag}-"
+    deadline = time.monotonic() + EARLIER_TASKS_WAIT_S
+    while True:
+        running = [k for keys in client.processing().values() for k in keys
+                   if str(k).startswith(prefix)]
+        if not running:
+            return
+        if time.monotonic() > deadline:
+            raise ConfigError(f"--engine dask: {len(running)} task(s) of an earlier run on this "
+                              f"output folder are still running on the cluster after "
+                              f"{EARLIER_TASKS_WAIT_S:.0f} s (e.g. {running[0]}); stop them "
+                              f"(restart the workers) and resume again")
+        time.sleep(0.2)
 
 
 class _RecordsInOrder:
@@ -297,7 +382,7 @@ class _RecordsInOrder:
 
 
 def _died_error(exc: Exception, key: str) -> UserError:
-    part = key.split("-part-", 1)[-1]
+    part = "part-" + key.split("-part-", 1)[-1] + ".parquet"
     return ConfigError(f"--engine dask: the workers running part {part} died repeatedly "
                        f"({exc}); most often a worker runs out of memory: give each worker "
                        f"more memory or lower [output].chunk_rows. Committed parts are kept; "
@@ -318,9 +403,11 @@ def run_dask(plan, *, progress=None, resume: bool = False, scheduler: str | None
     distributed = _import_distributed()
     job = plan.job
     started_at, t0 = now_iso(), time.perf_counter()
+    out = Path(job.output_dir).resolve() if job.output_dir is not None else None
     with connect(scheduler, workers) as client:
+        if out is not None:
+            _wait_for_earlier_tasks(client, output_tag(out))
         log = prepare_output(plan, resume=resume)
-        out = Path(job.output_dir).resolve()
         metadata = part_metadata(plan)
         pipeline = Pipeline.from_plan(plan, metadata)
         _check_workers(client, pipeline, plan, out)
@@ -328,7 +415,7 @@ def run_dask(plan, *, progress=None, resume: bool = False, scheduler: str | None
         done = committed_chunks(records)
         rows_done = sum(r["rows_read"] for r in records)
         parts_done = len(records)
-        run_id = uuid.uuid4().hex[:12]
+        run_id = f"{output_tag(out)}-{uuid.uuid4().hex[:8]}"
         shared = client.scatter(pipeline, broadcast=True, hash=False)
         sums = {str(s.path): client.submit(file_sha256, s.path, key=f"annotator-{run_id}-sha256-"
                                            f"{s.index:05d}", pure=False)
@@ -338,7 +425,10 @@ def run_dask(plan, *, progress=None, resume: bool = False, scheduler: str | None
         work = pending_work(plan, done)
         if any(s.format != "parquet" for s in plan.sources):
             work = _prefetch(work, depth=window)  # parse CSV ahead while the driver waits
-        finished = distributed.as_completed()
+        # as_completed() alone would track the futures on the default client's loop, which need not
+        # be this client's (a second client in the process): a result lost with its worker and
+        # recomputed would then wait on the wrong loop.
+        finished = distributed.as_completed(loop=client.loop)
         in_flight: dict[str, object] = {}
         exhausted = False
 
