@@ -22,6 +22,7 @@ DEFAULT_SEED = 0
 # difference is below this (both come from the same tabulated engine; the tables interpolate
 # to ~1e-9, so anything larger means the output and its manifest disagree).
 AGREEMENT_RTOL = 1e-6
+MAG_TOLERANCE = 1e-6  # mag, for columns already logarithmic (distance modulus)
 
 PARAMETER_LABELS = {
     "name": ("name", ""),
@@ -301,38 +302,51 @@ def _rejected_section(summary, m: dict) -> str:
     return "".join(parts)
 
 
-def _consistency(cosmo, sample: Sample, z: np.ndarray, reach_stored: bool):
-    """Stored columns against the recorded cosmology on the sample: (rows, worst relative)."""
-    rows, worst = [], 0.0
-    usable = np.isfinite(z) & (z >= 0)
+def _consistency(cosmo, sample: Sample, z: np.ndarray,
+                 reach_stored: bool) -> tuple[list[list[str]], bool]:
+    """Stored columns against the recorded cosmology on the sample.
+
+    :return: the table rows, and whether any column disagrees.
+    """
+    rows: list[list[str]] = []
+    disagree = False
+    with np.errstate(invalid="ignore"):
+        usable = np.isfinite(z) & (z >= 0)
+    if not usable.any():
+        return rows, False
     for col in CHECKED_COLUMNS:
         stored = sample.get(col)
-        if stored is None or not usable.any():
+        if stored is None:
             continue
         model = np.full(len(z), np.nan)
         model[usable] = getattr(cosmo, col)(z[usable])
         both = np.isfinite(stored) & np.isfinite(model)
+        # Null in one only is shown, not judged: an annotator may leave a value null on
+        # purpose (a flag it raised).
+        one_only = int(np.sum(np.isfinite(stored) != np.isfinite(model)))
         if not both.any():
             continue
         diff = np.abs(stored[both] - model[both])
-        scale = np.maximum(np.abs(model[both]), 1e-300)
-        rel = float(np.max(diff / scale))
-        # distance moduli are logarithmic: compare them in magnitudes, not relatively
         max_abs = float(np.max(diff))
-        ok = (max_abs < 1e-6) if col.endswith("_mag") else (rel < AGREEMENT_RTOL or max_abs
-                                                            < 1e-9)
-        worst = max(worst, 0.0 if ok else 1.0)
+        rel = float(np.max(diff / np.maximum(np.abs(model[both]), 1e-300)))
+        if col.endswith("_mag"):  # logarithmic already: compare in magnitudes
+            ok = max_abs < MAG_TOLERANCE
+        else:
+            ok = rel < AGREEMENT_RTOL or max_abs < 1e-9
+        disagree |= not ok
         rows.append([page.raw_cell(f"<code>{col}</code>"), f"{int(both.sum()):,}",
-                     f"{max_abs:.2e}", f"{rel:.2e}", "agree" if ok else "DISAGREE"])
-    if reach_stored and usable.any():
+                     f"{max_abs:.2e}", f"{rel:.2e}", f"{one_only:,}",
+                     "agree" if ok else "DISAGREE"])
+    if reach_stored:
         stored = sample.reach[usable]
         model = np.where(cosmo.reachable(z[usable]), REACHABLE, UNREACHABLE)
         known = stored != UNKNOWN
         bad = int(np.sum(stored[known] != model[known]))
+        disagree |= bad > 0
         rows.append([page.raw_cell("<code>reachable</code>"), f"{int(known.sum()):,}",
-                     f"{bad} differ", "", "agree" if bad == 0 else "DISAGREE"])
-        worst = max(worst, 0.0 if bad == 0 else 1.0)
-    return rows, worst > 0
+                     f"{bad:,} differ", "", f"{int(np.sum(~known)):,}",
+                     "agree" if bad == 0 else "DISAGREE"])
+    return rows, disagree
 
 
 # ---------------------------------------------------------------------------- build
@@ -398,9 +412,10 @@ def build_report(folder: str | Path, to: str | Path, *, sample_rows: int = DEFAU
 
     # -- distances
     d_c = sample.get("comoving_distance_mpc")
-    if d_c is None and usable.any():
+    if d_c is None:
         d_c = np.full(sample.size, np.nan)
-        d_c[usable] = cosmo.comoving_distance_mpc(z[usable])
+        if usable.any():
+            d_c[usable] = cosmo.comoving_distance_mpc(z[usable])
     png = figures.distance_redshift(cosmo, derived, z if zc else None, sample.reach, d_c,
                                     z_max_data)
     figs.append("distance-redshift")
@@ -412,9 +427,13 @@ def build_report(folder: str | Path, to: str | Path, *, sample_rows: int = DEFAU
             "with the Hubble sphere, event horizon and particle horizon",
             "Curves are computed from the cosmology recorded in the manifest. The Hubble sphere "
             f"(z = {page.fmt_number(hs)}) is where an object recedes at the speed of light "
-            "today, at the Hubble radius c/H₀; objects beyond the event horizon "
-            f"(z = {page.fmt_number(z_eh)}) can never receive a signal sent now; the comoving "
-            "distance approaches the particle horizon as z grows without bound. "
+            "today, at the Hubble radius c/H₀; "
+            + (f"objects beyond the event horizon (z = {page.fmt_number(z_eh)}) can never "
+               "receive a signal sent now; " if has_eh else
+               "this model has no event horizon: a signal sent now reaches every object in "
+               "the end; ")
+            + "the comoving distance approaches the particle horizon as z grows without "
+            "bound. "
             + (sample_line if zc else "No redshift column: no objects drawn.")) + "</section>")
 
     # -- redshift distribution
@@ -445,9 +464,10 @@ def build_report(folder: str | Path, to: str | Path, *, sample_rows: int = DEFAU
     hubble_parts = ['<section id="hubble"><h2>Hubble diagram and absolute magnitudes</h2>']
     mu = sample.get("distance_modulus_mag")
     mu_note = ""
-    if mu is None and usable.any():
+    if mu is None:
         mu = np.full(sample.size, np.nan)
-        mu[usable] = cosmo.distance_modulus_mag(z[usable])
+        if usable.any():
+            mu[usable] = cosmo.distance_modulus_mag(z[usable])
         mu_note = " The output has no distance_modulus_mag column; the points use the " \
                   "recorded cosmology."
     png = figures.hubble_diagram(cosmo, derived, z if zc else None, mu, sample.reach,
@@ -480,10 +500,10 @@ def build_report(folder: str | Path, to: str | Path, *, sample_rows: int = DEFAU
             "<h3>Stored values against the recorded cosmology</h3>"
             f"<p>Each stored column recomputed from the manifest's cosmology for the "
             f"{sample.size:,} sampled rows; they agree when the relative difference is below "
-            f"{AGREEMENT_RTOL:g} (magnitudes: 10⁻⁶ mag).</p>"
+            f"{AGREEMENT_RTOL:g} (distance moduli: {MAG_TOLERANCE:g} mag).</p>"
             + page.table(["column", "rows compared", "max |difference|",
-                          "max relative difference", "verdict"], rows, numeric_cols=(1, 2, 3),
-                         table_id="consistency"))
+                          "max relative difference", "null in one only", "verdict"], rows,
+                         numeric_cols=(1, 2, 3, 4), table_id="consistency"))
         if disagree:
             hubble_parts.append(page.note(
                 "Some stored values do not match the cosmology recorded in the manifest: the "
