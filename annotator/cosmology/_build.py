@@ -1,13 +1,15 @@
 """Tabulation of one cosmology: integrals on a grid in x = ln a, then the tables.
 
 All work is dimensionless here (distances in c/H0, times in 1/H0); the caller scales
-the tables to Mpc and Gyr.  Grid layout (x = ln a):
+the tables to Mpc and Gyr.  Grid layout (x = ln a), at refinement level 0:
 
 * an extension far into the past, [X_PAST - 16, X_PAST], spacing 1/4, that only
   feeds the integrals (its start carries an analytic power-law tail);
 * the tabulated past, [X_PAST, 0], spacing H = 1/128, X_PAST = -ln(1 + z_max);
 * the future, [0, 8] at spacing H, then blocks of 8 at spacing 1/32 until the
   horizon integrals have converged (capped at x = 400).
+
+Each refinement level halves the spacings (see Tables.error_estimate and the caller).
 """
 
 from __future__ import annotations
@@ -251,7 +253,7 @@ class Tables:
         lne2 = self.bg.ln_e2(-uy)
         g_eta = np.exp(uy - 0.5 * lne2)
         # recover eta_e at the nodes from y: e^y = 1 + e0 chi / eta = 1 + e0 (e0 - eta)/eta
-        eta_y = e0 * e0 / (np.exp(y) - 1.0 + e0)
+        eta_y = e0 * e0 / (np.expm1(y) + e0)
         chi_y = e0 - eta_y
         dyde = (1.0 - e0) / (eta_y + e0 * chi_y) - 1.0 / eta_y
         du_dy = 1.0 / (-dyde * g_eta)
@@ -292,7 +294,6 @@ class Tables:
         quintic build-time interpolant for the horizon table."""
         errs = {}
         sl = slice(self.i_tab0, self.i0 + 1)
-        xk = self.x[sl]
         # midpoints of every stride-th interval: pair node k with k + 1 on the fine grid
         x_lo = self.x[sl][:-1][::stride]
         x_hi = self.x[sl][1:][::stride]

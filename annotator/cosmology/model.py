@@ -91,6 +91,8 @@ class Cosmology:
     give NaN; redshifts beyond ``z_max_tabulated`` (about 1e10) give NaN.
     """
 
+    CosmologyError = CosmologyError  # also reachable as cosmo.CosmologyError
+
     __slots__ = ("_h0", "_omega_m", "_omega_de_in", "_omega_b", "_t_cmb", "_n_eff", "_m_nu",
                  "_w0", "_wa", "_name", "_bg", "_tables", "_lock", "__weakref__")
 
@@ -522,7 +524,7 @@ class _ScaledTables:
         self.chi_dimless = T["chi/u"]
         self.inv_chi = tb.T_inv_chi
         self.inv_t = tb.T_inv_t
-        # ln(age) as a function of s = ln(remaining conformal time), in ln Gyr.
+        # ln(age) in ln Gyr as a function of tau = ln(elapsed / remaining conformal time).
         self.cross = (tb.T_cross.scaled(1.0, math.log(th)) if tb.T_cross is not None
                       else None)
         self.arrive_eta = tb.T_arrive_eta.scaled(th) if tb.T_arrive_eta is not None else None
