@@ -47,7 +47,7 @@ METHOD_KEYS = {
     "power_law": ("method", "alpha", "z_max"),
     "power_law_colour": ("method", "colour", "alpha_range", "z_max"),
     "template": ("method", "sed", "z_max"),
-    "template_mix": ("method", "seds", "colour", "z_max"),
+    "template_mix": ("method", "seds", "colour", "z_max", "clip_tolerance_mag"),
     "polynomial": ("method", "coefficients", "colour", "z_max", "colour_range"),
 }
 OPTIONS = ("tolerance_mag", "use_redshift_error")
@@ -331,7 +331,8 @@ def _method(setup, band: BandSpec, spec, bands: dict[str, BandSpec], tolerance: 
         raise setup.error(f"{key}.{unknown[0]}", f"unknown key for method {kind!r} (allowed: "
                           f"{', '.join(METHOD_KEYS[kind])})")
     for required in METHOD_KEYS[kind][1:]:
-        optional = required in ("z_max", "alpha_range", "colour_range") and not (
+        optional = required in ("z_max", "alpha_range", "colour_range",
+                                "clip_tolerance_mag") and not (
             kind == "polynomial" and required == "z_max")
         if required not in spec and not optional:
             raise setup.error(f"{key}.{required}", f"missing (method {kind!r} needs "
@@ -402,8 +403,14 @@ def _method(setup, band: BandSpec, spec, bands: dict[str, BandSpec], tolerance: 
         check_coverage(sed, rest, 0.0, band_key=key, rest_frame=True)
     if kind == "template":
         return Template.build(seds[0], band.filter, rest, z_max, key, tolerance)
+    clip = 0.1
+    if "clip_tolerance_mag" in spec:
+        clip = _number(setup, f"{key}.clip_tolerance_mag", spec["clip_tolerance_mag"],
+                       what="a colour difference in mag, >= 0")
+        if clip < 0:
+            raise setup.error(f"{key}.clip_tolerance_mag", f"expected >= 0, got {clip:g}")
     return TemplateMix.build(seds, band.filter, rest, colour, colour_filters, z_max, key,
-                             tolerance)
+                             tolerance, clip)
 
 
 def _coefficients(setup, key: str, value) -> np.ndarray:

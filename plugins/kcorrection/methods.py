@@ -306,7 +306,9 @@ class TemplateMix(Method):
     ``F_p(w) / F_q(w) = 10^(-0.4 c)`` is linear in w and solves in closed form:
     ``w = a / (a - b)``, ``a = F_p^A - rho F_q^A``, ``b = F_p^B - rho F_q^B``.
     A colour outside the two templates' colours at that redshift is clipped to the nearer
-    template and flagged.
+    template, and flagged when it lies more than ``clip_tolerance_mag`` beyond that
+    template's colour (photometric noise alone scatters about half of the objects of the
+    bluest and of the reddest type a little beyond them).
     """
 
     colour: tuple[str, str]
@@ -314,12 +316,13 @@ class TemplateMix(Method):
     columns: tuple[int, int, int]  # distinct-filter index of R, p and q
     sed_paths: tuple[str, str]
     z_max: float
+    clip_tolerance_mag: float = 0.1
     kind: ClassVar[str] = "template_mix"
 
     @classmethod
     def build(cls, seds: tuple[Curve, Curve], filt: Filter, rest: Filter,
               colour: tuple[str, str], colour_filters: tuple[Filter, Filter], z_max: float,
-              key: str, tolerance: float) -> "TemplateMix":
+              key: str, tolerance: float, clip_tolerance_mag: float = 0.1) -> "TemplateMix":
         # The band is often one of the colour's bands (r with g - r): tabulate each distinct
         # filter once.
         distinct: list[Filter] = []
@@ -346,14 +349,16 @@ class TemplateMix(Method):
                 functions.append(f)
         table = tabulate(functions, z_max, error=_maggies_error, tolerance=tolerance)
         return cls(colour=colour, table=table, columns=tuple(columns),
-                   sed_paths=(seds[0].path, seds[1].path), z_max=z_max)
+                   sed_paths=(seds[0].path, seds[1].path), z_max=z_max,
+                   clip_tolerance_mag=clip_tolerance_mag)
 
     def flag_suffixes(self):
         out = super().flag_suffixes()
         p, q = self.colour
         out[COLOUR_CLIPPED] = (
-            f"The colour {p} - {q} lies outside the colours of the two templates at this "
-            f"redshift: the K-correction is that of the nearer template.")
+            f"The colour {p} - {q} lies more than {self.clip_tolerance_mag:g} mag beyond the "
+            f"colours of both templates at this redshift: the K-correction is that of the "
+            f"nearer template.")
         return out
 
     def describe(self) -> str:
@@ -381,6 +386,15 @@ class TemplateMix(Method):
             w[np.isnan(w) & np.isfinite(colour)] = 0.5
             clipped = (w < -1e-9) | (w > 1.0 + 1e-9)
         np.clip(w, 0.0, 1.0, out=w)
+        if clipped.any():
+            # Distance, in magnitudes, from the nearer template's colour (clipped rows only).
+            rows = np.flatnonzero(clipped)
+            end = w[rows]
+            f_p = np.where(end > 0.5, b_p[rows], a_p[rows])
+            f_q = np.where(end > 0.5, b_q[rows], a_q[rows])
+            with np.errstate(invalid="ignore", divide="ignore"):
+                beyond = np.abs(colour[rows] + 2.5 * np.log10(f_p / f_q))
+            clipped[rows] = ~(beyond <= self.clip_tolerance_mag)
         return w, clipped, inside, a_r, b_r
 
     def evaluate(self, z, colour):

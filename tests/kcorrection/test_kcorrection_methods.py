@@ -152,8 +152,15 @@ def test_template_mix_reproduces_a_mixed_object(tmp_path, curves):
     assert flags["colour_clipped"][2]
     early_only = _method(configure(tmp_path, {"r": _band(
         "red", "mag_r", {"method": "template", "sed": "seds/early.csv", "z_max": 1.2})}), "r")
-    assert values[2] == pytest.approx(early_only.evaluate(np.array([0.4]), None)[0][0],
-                                      abs=1e-4)
+    k_early = early_only.evaluate(np.array([0.4]), None)[0][0]
+    assert values[2] == pytest.approx(k_early, abs=1e-4)
+    # Within clip_tolerance_mag (0.1) of the early template's colour: its K, not flagged;
+    # beyond it: flagged.
+    c_early = (ab_magnitude_direct(early_sed, BLUE, SUPPORT["blue"], 0.4)
+               - ab_magnitude_direct(early_sed, RED, SUPPORT["red"], 0.4))
+    values, flags = k.evaluate(np.full(3, 0.4), c_early + np.array([0.05, 0.09, 0.2]))
+    np.testing.assert_allclose(values, k_early, atol=1e-4)
+    assert flags["colour_clipped"].tolist() == [False, False, True]
 
 
 # ---------------------------------------------------------------------------- polynomial
