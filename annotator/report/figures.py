@@ -168,7 +168,7 @@ def distance_redshift(cosmology, derived: dict, z_sample: np.ndarray | None,
                 label="angular-diameter distance $D_A$", zorder=3)
         ax.plot(z, d_t, color=GREEN, lw=2.0, ls=":",
                 label=r"light-travel distance $c\,t_\mathrm{lookback}$", zorder=3)
-        y_lo = float(np.nanmin(d_a[:1])) / 1.6
+        y_lo = float(np.nanmin(np.concatenate([d_a, d_c]))) / 1.6
         y_hi = float(np.nanmax(d_l)) * 1.6
         ax.set_xlim(z_lo, z_hi)
         ax.set_ylim(y_lo, y_hi)
