@@ -66,6 +66,7 @@ class Job:
     :ivar compression: Parquet codec of the output.
     :ivar overwrite: replace a non-empty output folder.
     :ivar cosmology: the ``[cosmology]`` table (a preset name and/or parameters).
+    :ivar cosmology_is_default: neither the job file nor the command line chose one.
     :ivar columns: the ``[columns]`` table (logical name -> catalogue column, and settings).
     :ivar annotators: ``{name: {"enabled": bool | None, "options": dict}}``.
     :ivar sections: other top-level tables, each claimed by an annotator at plan time.
@@ -84,6 +85,7 @@ class Job:
     compression: str = "zstd"
     overwrite: bool = False
     cosmology: dict = field(default_factory=lambda: {"preset": DEFAULT_PRESET})
+    cosmology_is_default: bool = False
     columns: dict = field(default_factory=dict)
     annotators: dict = field(default_factory=dict)
     sections: dict = field(default_factory=dict)
@@ -216,6 +218,7 @@ def job_from_mapping(
     _expect(ow, bool, "[output].overwrite", "true or false")
 
     cosmo = _expect(data.get("cosmology", {}), dict, "[cosmology]", "a table")
+    cosmology_is_default = not cosmology_preset and not cosmo
     if cosmology_preset:
         cosmo = {"preset": cosmology_preset}
     elif not cosmo:
@@ -251,6 +254,7 @@ def job_from_mapping(
         compression=compression,
         overwrite=ow,
         cosmology=dict(cosmo),
+        cosmology_is_default=cosmology_is_default,
         columns=dict(columns),
         annotators=annotators,
         sections=sections,

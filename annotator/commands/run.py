@@ -78,9 +78,9 @@ def main(args) -> int:
             if how == "detected":
                 print(f"annotator: input {logical!r} <- column {col!r} (detected; set [columns] "
                       f"{logical} = \"...\" to choose another)", file=sys.stderr)
-    if not args.cosmology and job.cosmology == {"preset": "planck2018"}:
-        print("annotator: cosmology planck2018 (the default; choose with --cosmology or "
-              "[cosmology])", file=sys.stderr)
+    if job.cosmology_is_default:
+        print(f"annotator: cosmology {job.cosmology['preset']} (the default; choose with "
+              f"--cosmology or [cosmology])", file=sys.stderr)
     if args.dry_run:
         print(describe_plan(plan))
         return 0
