@@ -13,6 +13,8 @@ def add_arguments(p) -> None:
     p.add_argument("--phase", default=None,
                    help="only jobs in this phase (PENDING, QUEUED, EXECUTING, COMPLETED, "
                         "ERROR, ABORTED)")
+    p.add_argument("--limit", type=int, default=None, metavar="N",
+                   help="only the N most recent jobs")
     p.add_argument("--json", action="store_true",
                    help="print JSON (a list of jobs; one object with ID)")
 
@@ -72,7 +74,7 @@ def main(args) -> int:
             job = client.job(args.job_id)
             print(json.dumps(job, indent=2) if args.json else format_job(job))
             return 0
-        jobs = client.jobs(phase=args.phase.upper() if args.phase else None)
+        jobs = client.jobs(phase=args.phase.upper() if args.phase else None, limit=args.limit)
     if args.json:
         print(json.dumps(jobs, indent=2))
     elif jobs:

@@ -76,12 +76,9 @@ def _url(sock: socket.socket) -> str:
 
 
 def main(args) -> int:
-    import uvicorn
-
-    from ..service.app import ServiceConfig, create_app
+    from ..provenance import write_json_atomic
     from ..service.security import check_bind, resolve_data_roots
     from ..service.workers import acquire_lock
-    from ..provenance import write_json_atomic
 
     if not 1 <= args.workers <= 64:
         raise ConfigError(f"--workers: {args.workers} is outside 1 to 64")
@@ -102,6 +99,10 @@ def main(args) -> int:
         other = (root / "service.lock").read_text().strip()
         raise ConfigError(f"--root {root}: another service (pid {other or 'unknown'}) is "
                           f"using this root; stop it first or choose another --root")
+    import uvicorn  # the heavy imports only once every check has passed
+
+    from ..service.app import ServiceConfig, create_app
+
     sock = _bind(args.host, args.port)
     url = _url(sock)
     config = ServiceConfig(root=root, data_roots=data_roots, token=token,

@@ -7,7 +7,8 @@ Routes (every answer is JSON; errors are ``{"error": "..."}`` with a 4xx/5xx sta
   ``text/plain``) or the same mapping as JSON (``application/json``). Query parameters:
   ``name`` (a label), ``base_dir`` (absolute folder that relative paths are resolved
   against, normally the job file's folder). 201 with the job; 4xx with the reason.
-* ``GET /jobs`` - ``{"jobs": [...], "counts": {phase: n}}``, oldest first; ``?phase=``.
+* ``GET /jobs`` - ``{"jobs": [...], "counts": {phase: n}}``, oldest first; ``?phase=``,
+  ``?limit=N`` (the N most recent).
 * ``GET /jobs/{id}`` - one job, with its manifest once COMPLETED and its history.
 * ``POST /jobs/{id}/abort`` - to ABORTED (its worker process is killed); 409 if it has ended.
 """
@@ -18,6 +19,7 @@ import json
 import sys
 import threading
 import time
+import traceback
 from contextlib import asynccontextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -184,7 +186,11 @@ def validate_submission(mapping: dict, *, base_dir: str | None, config: ServiceC
     if base_dir is not None and not Path(base_dir).is_absolute():
         raise ConfigError(f"base_dir: {base_dir!r} is not an absolute folder")
     output = mapping.get("output")
-    stored = json.loads(json.dumps(mapping))  # a deep copy that is sure to be JSON
+    try:
+        stored = json.loads(json.dumps(mapping))  # a deep copy that is sure to be JSON
+    except (TypeError, ValueError) as exc:
+        raise ConfigError(f"job: values must be strings, numbers, booleans, lists or tables "
+                          f"(TOML dates and times are not used by any key): {exc}") from None
     if isinstance(output, dict):
         if "dir" in output:
             notes.append(f"[output].dir {output['dir']!r} ignored: the service writes each "
@@ -241,7 +247,10 @@ def create_app(config: ServiceConfig) -> FastAPI:
         try:
             yield
         finally:
-            await run_in_threadpool(pool.stop)
+            requeued = await run_in_threadpool(pool.stop)
+            print(f"annotator: service stopped; {requeued} executing job"
+                  f"{'s' if requeued != 1 else ''} put back in the queue", file=sys.stderr,
+                  flush=True)
 
     app = FastAPI(title="annotator batch service", version=__version__, lifespan=lifespan,
                   docs_url=None, redoc_url=None)
@@ -272,6 +281,12 @@ def create_app(config: ServiceConfig) -> FastAPI:
     @app.exception_handler(UserError)
     async def user_error(request, exc: UserError):
         return JSONResponse({"error": str(exc)}, status_code=_status_of(exc))
+
+    @app.exception_handler(Exception)
+    async def internal_error(request, exc: Exception):
+        traceback.print_exception(exc)
+        return JSONResponse({"error": f"internal error ({type(exc).__name__}: {exc}); the "
+                                      f"service log has the details"}, status_code=500)
 
     def find(ident: str):
         record = ledger.get(ident)

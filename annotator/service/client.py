@@ -124,8 +124,10 @@ class ServiceClient:
         mapping, base = read_job_for_submission(path)
         return self.submit(mapping, name=name or Path(path).name, base_dir=base)
 
-    def jobs(self, phase: str | None = None) -> list[dict]:
+    def jobs(self, phase: str | None = None, limit: int | None = None) -> list[dict]:
         params = {"phase": phase} if phase else {}
+        if limit:
+            params["limit"] = limit
         return self._request("GET", "/jobs", params=params)["jobs"]
 
     def job(self, ident: str) -> dict:

@@ -194,17 +194,18 @@ class Ledger:
         return JobRecord.from_row(row) if row is not None and row["id"] else None
 
     def list(self, phase: str | None = None, limit: int | None = None) -> list[JobRecord]:
+        """Jobs in submission order; with ``limit``, the most recent ``limit`` of them."""
         sql, args = "SELECT * FROM jobs WHERE id IS NOT NULL", []
         if phase:
             sql += " AND phase = ?"
             args.append(phase)
-        sql += " ORDER BY seq"
+        sql += " ORDER BY seq DESC"
         if limit:
             sql += " LIMIT ?"
             args.append(int(limit))
         with self._connect() as con:
             rows = con.execute(sql, args).fetchall()
-        return [JobRecord.from_row(r) for r in rows]
+        return [JobRecord.from_row(r) for r in reversed(rows)]
 
     def counts(self) -> dict[str, int]:
         with self._connect() as con:

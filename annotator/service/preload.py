@@ -3,8 +3,9 @@
 Each worker process is forked from the fork server, so what is imported here is already in
 memory when a job starts: numpy, pyarrow, the engine, and the annotator plugins, found through
 their entry points exactly as a worker finds them (so a job starts in milliseconds, not the
-second a fresh interpreter spends on imports). A plugin that fails to import is skipped here
-and reported by the worker that needs it, with its name.
+second a fresh interpreter spends on imports). The plugin manager is built here too, once,
+and each worker uses its own copy. A plugin that fails to import is skipped here, and the
+worker then builds its own plugin manager, which reports the plugin by name.
 """
 
 from __future__ import annotations
@@ -13,7 +14,8 @@ import importlib
 import importlib.metadata
 import os
 
-CORE_MODULES = ("numpy", "pandas", "pyarrow.parquet", "pyarrow.csv", "pyarrow.compute",
+CORE_MODULES = ("numpy", "pandas", "scipy", "duckdb", "pyarrow.parquet", "pyarrow.csv",
+                "pyarrow.compute", "importlib.metadata", "email.parser",
                 "annotator.runner", "annotator.engines.local", "annotator.plan",
                 "annotator.pipeline", "annotator.provenance", "annotator.registry",
                 "annotator.cosmology", "annotator.service.workers")
@@ -38,8 +40,16 @@ def warm() -> list[str]:
             importlib.import_module(ep.module)
         except Exception:  # the worker reports it, naming the plugin
             failed.append(ep.module)
+    if not failed:
+        global plugin_manager
+        from annotator.registry import get_plugin_manager
+
+        plugin_manager = get_plugin_manager()
     return failed
 
+
+#: built by :func:`warm` in the fork server; None when a plugin failed to import
+plugin_manager = None
 
 try:
     warm()

@@ -28,6 +28,7 @@ import json
 import multiprocessing
 import multiprocessing.connection
 import os
+import resource
 import signal
 import sys
 import threading
@@ -46,6 +47,8 @@ PRELOAD = ["annotator.service.preload"]
 
 #: exit status of a worker that found its job folder locked by another live worker
 EXIT_BUSY = 75
+#: exit status of a worker stopped by SIGTERM (a service stop, `systemctl stop`): not a crash
+EXIT_STOPPED = 76
 
 
 def signal_name(returncode: int) -> str:
@@ -149,6 +152,9 @@ def run_worker(root: str, ident: str, data_roots: list[str]) -> None:
     """
     _exit_with_parent()
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C on the service's terminal
+    # A polite stop (systemd sends SIGTERM to every process of the service) ends the worker at
+    # once; its committed parts stay, and the job resumes without counting a crash.
+    signal.signal(signal.SIGTERM, lambda signum, frame: os._exit(EXIT_STOPPED))
     ledger = Ledger(root)
     record = ledger.get(ident)
     folder = Path(record.folder)
@@ -162,7 +168,9 @@ def run_worker(root: str, ident: str, data_roots: list[str]) -> None:
         print(f"{time.ctime()}: {ident}: worker {os.getpid()} starts run {record.runs}",
               flush=True)
         outcome = execute(ledger, record, [Path(r) for r in data_roots])
-        print(f"{time.ctime()}: {ident}: {outcome}", flush=True)
+        usage = resource.getrusage(resource.RUSAGE_SELF)
+        print(f"{time.ctime()}: {ident}: {outcome} (CPU {usage.ru_utime + usage.ru_stime:.2f} s, "
+              f"peak memory {usage.ru_maxrss / 1024:.0f} MiB)", flush=True)
     finally:
         release_lock(lock)
         ledger.close()
@@ -185,7 +193,9 @@ def execute(ledger: Ledger, record, data_roots: list[Path]) -> str:
         check_output(job.output_dir, ledger.root)
         rows_at_start = sum(r["rows_read"] for r in CheckpointLog(job.output_dir).records())
         progress = _ProgressWriter(ledger, ident, rows_at_start)
-        manifest = run_job(job, progress=progress, resume=True)
+        preloaded = sys.modules.get("annotator.service.preload")
+        manifest = run_job(job, pm=getattr(preloaded, "plugin_manager", None),
+                           progress=progress, resume=True)
     except UserError as exc:
         ledger.fail(ident, str(exc))
         return f"ERROR: {exc}"
@@ -242,8 +252,9 @@ class WorkerPool:
                                         daemon=True)
         self._thread.start()
 
-    def stop(self, timeout_s: float = 10.0) -> None:
-        """Stop the scheduler; running jobs are stopped and put back in the queue."""
+    def stop(self, timeout_s: float = 10.0) -> int:
+        """Stop the scheduler; running jobs are stopped and put back in the queue (how many
+        is returned)."""
         self._stop.set()
         self.wake()
         if self._thread is not None:
@@ -251,10 +262,13 @@ class WorkerPool:
         with self._lock:
             for run in list(self.running.values()):
                 run.process.kill()
+            requeued = 0
             for ident, run in list(self.running.items()):
                 run.process.join(timeout_s)
-                self.ledger.requeue(ident, "service stopped; resumes when it starts again")
+                requeued += self.ledger.requeue(ident, "service stopped; resumes when it "
+                                                "starts again")
             self.running.clear()
+        return requeued
 
     def wake(self) -> None:
         try:
@@ -364,6 +378,10 @@ class WorkerPool:
 
     def _worker_died(self, record, code: int) -> None:
         how = signal_name(code)
+        if code == EXIT_STOPPED:
+            self.ledger.requeue(record.id, f"worker stopped (SIGTERM) at {record.rows_done} rows; "
+                                f"resumes from its last committed part")
+            return
         if code == EXIT_BUSY:
             how = "its folder was locked by another worker"
         crashes = record.crashes + 1
