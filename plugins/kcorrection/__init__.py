@@ -192,7 +192,8 @@ class KCorrection(Annotator):
             z_ok = np.where(np.isfinite(z) & (z >= 0), z, np.nan)
         mu = np.asarray(self.cosmology.distance_modulus_mag(z_ok), dtype=np.float64)
         no_distance = ~np.isfinite(mu)
-        batch.flag(NO_DISTANCE, no_distance)
+        if no_distance.any():
+            batch.flag(NO_DISTANCE, no_distance)
         mags = {b.name: batch.values(b.magnitude_input) for b in self.bands
                 if b.magnitude_input in self.requires}
         errs = {b.name: batch.values(b.error_input) for b in self.bands
@@ -215,10 +216,12 @@ class KCorrection(Annotator):
                 colour = mags[p] - mags[q]
             k, flags = method.evaluate(z, colour)
             for suffix, mask in flags.items():
-                batch.flag(f"kcorrection_{b.name}_{suffix}", mask)
+                if mask.any():  # the core's flag bookkeeping costs a pass; skip empty masks
+                    batch.flag(f"kcorrection_{b.name}_{suffix}", mask)
             m = mags[b.name]
             missing = ~np.isfinite(m)
-            batch.flag(f"magnitude_{b.name}_missing", missing)
+            if missing.any():
+                batch.flag(f"magnitude_{b.name}_missing", missing)
             absolute = m - mu - k
             absolute[~np.isfinite(absolute)] = np.nan
             out[f"kcorrection_{b.name}_mag"] = k

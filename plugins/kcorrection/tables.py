@@ -176,13 +176,14 @@ class Grid:
     def locate(self, z: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Cell index, fraction within the cell, and where z lies inside [0, z_max].
 
-        Rows outside (and NaN) get index 0 and fraction 0; callers null them with ``inside``.
+        Rows outside (and NaN) get an index clamped into the table and a meaningless fraction;
+        callers null them with ``inside``.
         """
         with np.errstate(invalid="ignore"):
             inside = (z >= 0.0) & (z <= self.z_max)
-        t = np.where(inside, z, 0.0) * ((self.n - 1) / self.z_max)
-        idx = t.astype(np.intp)
-        np.minimum(idx, self.n - 2, out=idx)
+            t = z * ((self.n - 1) / self.z_max)
+            idx = t.astype(np.intp)  # NaN and huge values cast to some integer, clamped next
+        np.clip(idx, 0, self.n - 2, out=idx)
         t -= idx
         return idx, t, inside
 

@@ -250,3 +250,29 @@ def test_template_derivative_matches_finite_differences_of_direct_k(tmp_path, cu
                                     SUPPORT["red"])) / (2 * h)
         dkdz, _ = k.derivatives(np.array([z]), None)
         assert dkdz[0] == pytest.approx(ref, rel=0.02)
+
+
+def test_template_mix_closed_form_derivatives_match_finite_differences(tmp_path, curves):
+    # The error column uses dK/dz and dK/dc of the mixture in closed form; compare with
+    # central differences of K itself (common practice), where the colour is not clipped.
+    from annotator_plugins.kcorrection.methods import Method
+
+    bands = {
+        "b": _band("blue", "mag_b"),
+        "r": _band("red", "mag_r", {"method": "template_mix",
+                                    "seds": ["seds/early.csv", "seds/young.csv"],
+                                    "colour": ["b", "r"], "z_max": 1.2}),
+    }
+    k = _method(configure(tmp_path, bands), "r")
+    z = np.array([0.2, 0.5, 0.9])
+    mid = []
+    for zi in z:  # a colour half-way between the two templates' at each z
+        c = [ab_magnitude_direct(f, BLUE, SUPPORT["blue"], zi)
+             - ab_magnitude_direct(f, RED, SUPPORT["red"], zi) for f in (early_sed, young_sed)]
+        mid.append(0.5 * (c[0] + c[1]))
+    colour = np.array(mid)
+    dz, dc = k.derivatives(z, colour)
+    fd_z, fd_c = Method.derivatives(k, z, colour)
+    np.testing.assert_allclose(dz, fd_z, rtol=0.02, atol=1e-3)
+    np.testing.assert_allclose(dc, fd_c, rtol=1e-3)
+    assert np.all(np.abs(dc) > 0.05)
