@@ -59,7 +59,7 @@ from annotator.cosmology.constants import C_KM_S
 from annotator.errors import ConfigError
 
 from ._redshift import REDSHIFT_HINTS
-from .uncertainties import ERROR_HINTS, error_inputs
+from .uncertainties import ERROR_HINTS, as_nullable_float64, error_inputs
 
 FRAMES = ("heliocentric", "cmb")
 RA_HINTS = ("ra", "ra_deg", "radeg", "ra_icrs", "raj2000", "alpha")
@@ -124,9 +124,11 @@ def galactic_to_icrs(l_deg: float, b_deg: float) -> np.ndarray:
 
 
 def valid_position(ra_deg: np.ndarray, dec_deg: np.ndarray) -> np.ndarray:
-    """True where 0 <= ra <= 360 and -90 <= dec <= 90 (degrees, finite)."""
+    """True where 0 <= ra <= 360 and -90 <= dec <= 90 (degrees; false for NaN)."""
     with np.errstate(invalid="ignore"):
-        return (ra_deg >= 0.0) & (ra_deg <= 360.0) & (dec_deg >= -90.0) & (dec_deg <= 90.0)
+        ok = np.abs(ra_deg - 180.0) <= 180.0
+        ok &= np.abs(dec_deg) <= 90.0
+    return ok
 
 
 def doppler_factor_minus_one(ra_deg: np.ndarray, dec_deg: np.ndarray,
@@ -143,19 +145,33 @@ def doppler_factor_minus_one(ra_deg: np.ndarray, dec_deg: np.ndarray,
     beta, gamma = dipole.beta, dipole.gamma
     gamma_minus_one = beta * beta * gamma * gamma / (gamma + 1.0)
     ax, ay, az = dipole.apex_icrs()
-    ra_r = np.radians(ra)
-    dec_r = np.radians(dec)
-    cos_dec = np.cos(dec_r)
-    mu = cos_dec * (np.cos(ra_r) * ax + np.sin(ra_r) * ay)
-    mu += np.sin(dec_r) * az
-    # D - 1 = (1 - gamma (1 - beta mu)) / (gamma (1 - beta mu))
-    gb = gamma * beta
-    num = mu * gb
-    num -= gamma_minus_one
-    den = mu * (-gb)
-    den += gamma
-    num /= den
-    num[~ok] = np.nan
+    # mu = cos(dec) (ax cos(ra) + ay sin(ra)) + az sin(dec)
+    #    = cos(dec) r_xy cos(ra - phi) + az sin(dec),  phi = atan2(ay, ax);
+    # cos(dec) = sqrt(1 - sin^2(dec)) as dec is in [-90, 90]: two trig calls per row.
+    r_xy = math.hypot(ax, ay)
+    phi = math.atan2(ay, ax)
+    with np.errstate(invalid="ignore"):
+        sin_dec = np.radians(dec)
+        np.sin(sin_dec, out=sin_dec)
+        cos_dec = np.multiply(sin_dec, sin_dec)
+        np.subtract(1.0, cos_dec, out=cos_dec)
+        np.sqrt(cos_dec, out=cos_dec)
+        mu = np.multiply(ra, math.pi / 180.0)
+        mu -= phi
+        np.cos(mu, out=mu)
+        mu *= cos_dec
+        mu *= r_xy
+        sin_dec *= az
+        mu += sin_dec
+        # D - 1 = (1 - gamma (1 - beta mu)) / (gamma (1 - beta mu)); reuse the buffers
+        gb = gamma * beta
+        den = np.multiply(mu, -gb, out=cos_dec)
+        den += gamma
+        num = np.multiply(mu, gb, out=mu)
+        num -= gamma_minus_one
+        num /= den
+    if not ok.all():
+        num[~ok] = np.nan
     return num
 
 
@@ -263,27 +279,29 @@ class RedshiftFrames(Annotator):
 
     def annotate(self, batch):
         z = batch.values("redshift")
-        ra = batch.values("ra")
-        dec = batch.values("dec")
-        dm1 = doppler_factor_minus_one(ra, dec, self.dipole)
+        dm1 = doppler_factor_minus_one(batch.values("ra"), batch.values("dec"), self.dipole)
         with np.errstate(invalid="ignore"):
             batch.flag("position_invalid", np.isnan(dm1))
-            z_cmb = dm1 * (1.0 + z)
+            z_cmb = 1.0 + z
+            z_cmb *= dm1
             z_cmb += z
             out = {"redshift_cmb": z_cmb}
             if self.errors:
-                usable = z_cmb >= 0.0  # false for NaN
-                factor = dm1 + 1.0
                 sigmas = [batch.values(logical) for logical in self.errors]
                 # One bad half of a lower/upper pair voids both (as in the uncertainties).
-                bad = np.zeros(batch.num_rows, dtype=bool)
+                good = np.ones(batch.num_rows, dtype=bool)
                 for sigma in sigmas:
-                    bad |= ~(np.isfinite(sigma) & (sigma >= 0.0))
+                    good &= sigma >= 0.0  # false for NaN
+                    good &= sigma < np.inf
                 for logical, sigma in zip(self.errors, sigmas):
-                    err = sigma * factor
-                    err[bad] = np.nan
-                    out[_ERROR_COLUMNS[logical][0]] = err
-                batch.flag("redshift_error_invalid", usable & bad)
+                    err = dm1 + 1.0
+                    err *= sigma
+                    if not good.all():
+                        err[~good] = np.nan
+                    out[_ERROR_COLUMNS[logical][0]] = as_nullable_float64(err)
+                usable = z_cmb >= 0.0  # false for NaN
+                usable &= ~good
+                batch.flag("redshift_error_invalid", usable)
         return out
 
 

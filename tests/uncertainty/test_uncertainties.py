@@ -271,3 +271,16 @@ def test_heliocentric_errors_go_through_the_conversion(tmp_path):
     z_eh = cosmo.derived()["event_horizon_redshift"]
     np.testing.assert_allclose(_col(out, "reachable_probability"),
                                reachable_probability_gaussian(z_cmb, sigma_cmb, z_eh), rtol=1e-13)
+
+
+def test_nullable_arrays_equal_the_pyarrow_conversion():
+    from annotator_plugins.uncertainties import as_nullable_float64
+
+    # reference: pyarrow's own NaN-as-null conversion (pa.array(..., from_pandas=True))
+    rng = np.random.default_rng(9)
+    for n in (0, 1, 7, 64, 1001):
+        v = rng.normal(size=n)
+        v[rng.random(n) < 0.3] = np.nan
+        got = as_nullable_float64(v)
+        assert got.equals(pa.array(v, type=pa.float64(), from_pandas=True))
+        assert got.null_count == int(np.isnan(v).sum())

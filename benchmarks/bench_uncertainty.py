@@ -1,0 +1,112 @@
+"""Cost of the CMB-frame conversion and the uncertainties, measured against the same run without.
+
+The same synthetic catalogue (ids, positions, redshifts with errors, 5 magnitudes) is
+annotated by ``annotator run`` twice per repeat, in alternating order:
+
+* baseline: every default annotator, ``uncertainties`` disabled and no frame conversion;
+* with: the same plus ``redshift_frame = "heliocentric"`` (adds redshift_cmb, redshift_cmb_err)
+  and ``uncertainties`` (5 propagated errors and reachable_probability).
+
+The best of the repeats is reported (the machine is shared; the minimum is the least
+disturbed figure), with the ratio with/baseline.  Target: ratio <= 1.20.
+
+    python benchmarks/bench_uncertainty.py                  # 2 M rows, 3 repeats
+    python benchmarks/bench_uncertainty.py --rows 10000000  # 10 M rows
+    python benchmarks/bench_uncertainty.py --rows 200000 --repeats 1   # quick
+"""
+
+from __future__ import annotations
+
+import argparse
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+from _common import DATA, OUT, annotator_cmd, synthetic_catalogue  # noqa: E402
+
+# Like _common.measured, plus the child's CPU time (user + system): on a shared machine the
+# CPU time is far steadier than the wall time, and the ratio is judged on both.
+_WRAPPER = ("import resource, subprocess, sys, time;"
+            "t = time.perf_counter();"
+            "r = subprocess.run(sys.argv[1:]);"
+            "dt = time.perf_counter() - t;"
+            "u = resource.getrusage(resource.RUSAGE_CHILDREN);"
+            "print(f'@@ {dt} {u.ru_utime + u.ru_stime} {u.ru_maxrss}', file=sys.stderr);"
+            "sys.exit(r.returncode)")
+
+
+def measured(cmd: list[str]) -> tuple[float, float, float]:
+    """Run a command; return (wall s, CPU s, peak RSS MiB) of that child alone."""
+    proc = subprocess.run([sys.executable, "-c", _WRAPPER, *cmd], capture_output=True,
+                          text=True)
+    if proc.returncode != 0:
+        raise RuntimeError(f"{' '.join(cmd)} failed:\n{proc.stderr[-2000:]}")
+    line = [ln for ln in proc.stderr.splitlines() if ln.startswith("@@ ")][-1]
+    _, wall, cpu, peak_kib = line.split()
+    return float(wall), float(cpu), float(peak_kib) / 1024.0
+
+BASELINE = """[input]
+paths = ["{src}"]
+[output]
+dir = "{out}"
+chunk_rows = {chunk}
+overwrite = true
+[annotators]
+uncertainties = false
+"""
+
+WITH = """[input]
+paths = ["{src}"]
+[output]
+dir = "{out}"
+chunk_rows = {chunk}
+overwrite = true
+[columns]
+redshift_frame = "heliocentric"
+redshift_error = "z_err"
+"""
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--rows", default="2000000",
+                    help="comma-separated catalogue sizes (default 2M; e.g. 2000000,10000000)")
+    ap.add_argument("--repeats", type=int, default=3)
+    ap.add_argument("--chunk-rows", type=int, default=250_000)
+    args = ap.parse_args()
+
+    print(f"{'rows':>11} {'':>5} {'baseline s':>10} {'with s':>8} {'ratio':>6} {'added s':>8} "
+          f"{'added ns/row':>12}")
+    for rows in [int(r) for r in args.rows.split(",")]:
+        src = synthetic_catalogue(DATA / f"bench_{rows}.parquet", rows)
+        runs = {"baseline": [], "with": []}
+        peaks = {"baseline": 0.0, "with": 0.0}
+        for rep in range(args.repeats):
+            order = ("baseline", "with") if rep % 2 == 0 else ("with", "baseline")
+            for kind in order:
+                out = OUT / f"uncertainty_{rows}_{kind}"
+                job = OUT / f"uncertainty_{rows}_{kind}.toml"
+                job.parent.mkdir(parents=True, exist_ok=True)
+                text = BASELINE if kind == "baseline" else WITH
+                job.write_text(text.format(src=src, out=out, chunk=args.chunk_rows))
+                wall, cpu, peak = measured(annotator_cmd("run", "--config", str(job), "--quiet"))
+                runs[kind].append((wall, cpu))
+                peaks[kind] = max(peaks[kind], peak)
+                shutil.rmtree(out, ignore_errors=True)
+                job.unlink()
+        for i, label in ((0, "wall"), (1, "CPU")):
+            base = min(r[i] for r in runs["baseline"])
+            with_ = min(r[i] for r in runs["with"])
+            print(f"{rows:>11,} {label:>5} {base:>10.2f} {with_:>8.2f} {with_ / base:>6.3f} "
+                  f"{with_ - base:>8.2f} {(with_ - base) / rows * 1e9:>12.0f}", flush=True)
+        for kind in runs:
+            print(f"{'':>11} {kind} runs (wall/CPU s): "
+                  + ", ".join(f"{w:.2f}/{c:.2f}" for w, c in runs[kind])
+                  + f"; peak {peaks[kind]:.0f} MiB")
+
+
+if __name__ == "__main__":
+    main()
