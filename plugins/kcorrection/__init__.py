@@ -454,8 +454,9 @@ def _columns(b: BandSpec) -> list[ColumnSpec]:
         ColumnSpec(f"kcorrection_{b.name}_mag", pa.float64(), "mag", UCD_K + k_suffix,
                    f"K-correction in band {b.name} ({frames}): m = M + mu + K; {how}."),
         ColumnSpec(f"absolute_magnitude_{b.name}_mag", pa.float64(), "mag", UCD_ABS + suffix,
-                   f"Absolute magnitude in band {b.name}: {b.magnitude_column} - distance "
-                   f"modulus - kcorrection_{b.name}_mag (AB)."),
+                   f"Absolute magnitude (AB) in band {b.name}"
+                   + (f", rest-frame filter {b.rest_filter.path}" if b.rest_filter else "")
+                   + f": {b.magnitude_column} - distance modulus - kcorrection_{b.name}_mag."),
     ]
     if b.error_input:
         cols.append(ColumnSpec(

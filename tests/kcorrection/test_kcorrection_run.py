@@ -133,7 +133,11 @@ def test_colour_error_terms(tmp_path, curves):
 [bands.rp]
 magnitude = "mag_r"
 error = "err_r"
-kcorrection = { method = "polynomial", coefficients = [[0, 0], [1.0, 0.5]], colour = ["b", "rp"], z_max = 1.5 }
+[bands.rp.kcorrection]
+method = "polynomial"
+coefficients = [[0, 0], [1.0, 0.5]]
+colour = ["b", "rp"]
+z_max = 1.5
 [annotators.kcorrection]
 use_redshift_error = false
 """
