@@ -4,21 +4,19 @@ from __future__ import annotations
 
 import pyarrow as pa
 
-from annotator import Annotator, ColumnSpec, hookimpl
+from annotator import ColumnSpec, hookimpl
 
-from ._redshift import REDSHIFT_HINTS, usable_redshift
+from ._redshift import CosmologicalAnnotator
 
 UCD_DIST = "pos.distance;phys.cosmology"
 
 
-class Distances(Annotator):
+class Distances(CosmologicalAnnotator):
     name = "distances"
     version = "1.0"
     summary = "Comoving, transverse comoving, angular-diameter and luminosity distances; " \
               "distance modulus."
     position = 10
-    input_hints = {"redshift": REDSHIFT_HINTS}
-    requires = ("redshift",)
     provides = (
         ColumnSpec("comoving_distance_mpc", pa.float64(), "Mpc", UCD_DIST,
                    "Line-of-sight comoving distance D_C."),
@@ -32,16 +30,7 @@ class Distances(Annotator):
                    "Distance modulus 5 log10(D_L / 10 pc)."),
     )
 
-    def __init__(self, cosmology=None):
-        self.cosmology = cosmology
-
-    @classmethod
-    def configure(cls, setup):
-        setup.reject_unknown_options(())
-        return cls(setup.cosmology)
-
-    def annotate(self, batch):
-        z = usable_redshift(batch.values("redshift"))
+    def compute(self, z):
         c = self.cosmology
         dm = c.transverse_comoving_distance_mpc(z)
         return {

@@ -5,19 +5,17 @@ from __future__ import annotations
 import numpy as np
 import pyarrow as pa
 
-from annotator import Annotator, ColumnSpec, hookimpl
+from annotator import ColumnSpec, hookimpl
 
-from ._redshift import REDSHIFT_HINTS, usable_redshift
+from ._redshift import CosmologicalAnnotator
 
 
-class Horizons(Annotator):
+class Horizons(CosmologicalAnnotator):
     name = "horizons"
     version = "1.0"
     summary = "Reachability (inside our event horizon today), horizon-crossing age, " \
               "arrival age of a signal sent today."
     position = 40
-    input_hints = {"redshift": REDSHIFT_HINTS}
-    requires = ("redshift",)
     provides = (
         ColumnSpec("reachable", pa.bool_(), None, "meta.code;phys.cosmology",
                    "True if the object lies inside our cosmic event horizon today: a signal sent "
@@ -31,16 +29,7 @@ class Horizons(Annotator):
                    "object; null when unreachable."),
     )
 
-    def __init__(self, cosmology=None):
-        self.cosmology = cosmology
-
-    @classmethod
-    def configure(cls, setup):
-        setup.reject_unknown_options(())
-        return cls(setup.cosmology)
-
-    def annotate(self, batch):
-        z = usable_redshift(batch.values("redshift"))
+    def compute(self, z):
         reachable = self.cosmology.reachable(z)
         return {
             "reachable": np.ma.MaskedArray(reachable, mask=np.isnan(z)),

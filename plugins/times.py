@@ -4,18 +4,16 @@ from __future__ import annotations
 
 import pyarrow as pa
 
-from annotator import Annotator, ColumnSpec, hookimpl
+from annotator import ColumnSpec, hookimpl
 
-from ._redshift import REDSHIFT_HINTS, usable_redshift
+from ._redshift import CosmologicalAnnotator
 
 
-class Times(Annotator):
+class Times(CosmologicalAnnotator):
     name = "times"
     version = "1.0"
     summary = "Lookback time and age of the universe at emission."
     position = 20
-    input_hints = {"redshift": REDSHIFT_HINTS}
-    requires = ("redshift",)
     provides = (
         ColumnSpec("lookback_time_gyr", pa.float64(), "Gyr", "time.age;phys.cosmology",
                    "Time since the light we see left the object (lookback time)."),
@@ -23,16 +21,7 @@ class Times(Annotator):
                    "Age of the universe when the light we see left the object."),
     )
 
-    def __init__(self, cosmology=None):
-        self.cosmology = cosmology
-
-    @classmethod
-    def configure(cls, setup):
-        setup.reject_unknown_options(())
-        return cls(setup.cosmology)
-
-    def annotate(self, batch):
-        z = usable_redshift(batch.values("redshift"))
+    def compute(self, z):
         lookback = self.cosmology.lookback_time_gyr(z)
         return {
             "lookback_time_gyr": lookback,
