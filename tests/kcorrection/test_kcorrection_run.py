@@ -213,3 +213,24 @@ def test_pipeline_keeps_row_order_across_batches(tmp_path, curves):
     np.testing.assert_array_equal(k[0], k[1])
     np.testing.assert_array_equal(k[0], k[2])
     assert counts["kcorrection_r_outside_redshift_range"] == 9
+
+
+def test_configured_annotator_pickles_for_dask_workers(tmp_path, curves):
+    # Instances are shipped to Dask workers by pickle (annotator/api.py): the tables travel
+    # with them and give identical values.
+    import pickle
+
+    from _kcorr_helpers import configure
+
+    bands = {"b": {"magnitude": "mag_b", "filter": "filters/blue.csv"},
+             "r": {"magnitude": "mag_r", "filter": "filters/red.csv",
+                   "kcorrection": {"method": "template_mix", "colour": ["b", "r"],
+                                   "seds": ["seds/early.csv", "seds/young.csv"],
+                                   "z_max": 1.0}}}
+    inst = configure(tmp_path, bands)
+    clone = pickle.loads(pickle.dumps(inst))
+    z, c = np.linspace(0, 1, 7), np.linspace(0.2, 1.5, 7)
+    a = inst.bands[1].method.evaluate(z, c)[0]
+    b = clone.bands[1].method.evaluate(z, c)[0]
+    np.testing.assert_array_equal(a, b)
+    assert len(pickle.dumps(inst)) < 2_000_000
