@@ -35,7 +35,7 @@ QUERIES = [
      "round(avg(luminosity_distance_mpc), 1) AS mean_luminosity_mpc, "
      "round(avg(lookback_time_gyr), 3) AS mean_lookback_gyr "
      "FROM catalogue WHERE z >= 0.9 AND z < 1.1 GROUP BY sed_type ORDER BY sed_type"),
-    ("Rows kept but flagged (their annotations are null)",
+    ("Rows kept but flagged (the flagged quantities are null, except where a flag only warns)",
      "SELECT annotation_flags, count(*) AS galaxies FROM catalogue "
      "WHERE annotation_flags <> '' GROUP BY annotation_flags ORDER BY galaxies DESC"),
     ("Rows set aside while reading (line numbers in the CSV file, header = line 1)",
