@@ -39,8 +39,9 @@ Shared context
 --------------
 The pipeline (configured annotators and their cosmology) pickles small: the cosmology drops its
 tables when pickled. It is scattered once to every worker (``broadcast=True``); each worker
-process then holds one copy, whose tables are built on its first chunk and reused for every
-later chunk. Tasks are module-level functions with plain arguments (no locks, loggers or file
+process prepares the first copy it sees (its tables are built on its first chunk) and keeps it,
+by run, for every later chunk, even if Dask's memory manager drops the replica and the worker
+fetches it again. Tasks are module-level functions with plain arguments (no locks, loggers or file
 handles travel).
 
 The output folder (and, for Parquet, the inputs) must be visible at the same path on the driver
@@ -92,6 +93,7 @@ PROBE_ROWS = 256
 # ``client.run(worker_stats)``; a pipeline prepared once per worker, not once per chunk, shows
 # there.
 _worker_counts = {"pipelines_prepared": 0, "chunks_committed": 0}
+_prepare_lock = threading.Lock()
 
 
 # --------------------------------------------------------------------- worker side
@@ -130,8 +132,36 @@ def read_parquet_chunk(source: Source, index: int, chunk_rows: int,
     return chunk
 
 
-def annotate_and_commit(pipeline: Pipeline, work: Chunk | ParquetChunkTask, output_dir: str,
-                        compression: str) -> dict:
+@dataclass(frozen=True)
+class SharedPipeline:
+    """The job's pipeline as scattered to the workers, with the run it belongs to."""
+
+    run_id: str
+    pipeline: Pipeline
+
+
+#: Per worker process: the prepared pipeline of the last few runs, by run. Dask's memory
+#: manager may drop a scattered replica a worker holds and fetch it again later (a new
+#: object); this keeps the first, prepared one, so tables are built once per process and run.
+_prepared_pipelines: dict[str, Pipeline] = {}
+_KEEP_PIPELINES = 4
+
+
+def _prepared(shared: SharedPipeline) -> Pipeline:
+    with _prepare_lock:  # a worker with several threads shares one pipeline
+        pipeline = _prepared_pipelines.get(shared.run_id)
+        if pipeline is None:
+            pipeline = shared.pipeline
+            pipeline.prepare()
+            _worker_counts["pipelines_prepared"] += 1
+            _prepared_pipelines[shared.run_id] = pipeline
+            while len(_prepared_pipelines) > _KEEP_PIPELINES:
+                _prepared_pipelines.pop(next(iter(_prepared_pipelines)))
+        return pipeline
+
+
+def annotate_and_commit(shared: SharedPipeline, work: Chunk | ParquetChunkTask,
+                        output_dir: str, compression: str) -> dict:
     """The task body: read the chunk if only its descriptor came, then ``process_chunk``.
 
     :return: the checkpoint record of the committed part.
@@ -141,9 +171,7 @@ def annotate_and_commit(pipeline: Pipeline, work: Chunk | ParquetChunkTask, outp
         raise OutputError(f"output {out}: not visible on host {socket.gethostname()} (the Dask "
                           f"engine needs the output folder on a filesystem every worker sees)")
     chunk = work.read() if isinstance(work, ParquetChunkTask) else work
-    if not pipeline._prepared:
-        _worker_counts["pipelines_prepared"] += 1
-    record = process_chunk(pipeline, chunk, out, compression)
+    record = process_chunk(_prepared(shared), chunk, out, compression)
     _worker_counts["chunks_committed"] += 1
     return record
 
@@ -159,6 +187,7 @@ def worker_stats() -> dict:
 def reset_worker_stats() -> None:
     for key in _worker_counts:
         _worker_counts[key] = 0
+    _prepared_pipelines.clear()
 
 
 def first_differing_column(a: pa.Table, b: pa.Table) -> str | None:
@@ -416,7 +445,7 @@ def run_dask(plan, *, progress=None, resume: bool = False, scheduler: str | None
         rows_done = sum(r["rows_read"] for r in records)
         parts_done = len(records)
         run_id = f"{output_tag(out)}-{uuid.uuid4().hex[:8]}"
-        shared = client.scatter(pipeline, broadcast=True, hash=False)
+        shared = client.scatter(SharedPipeline(run_id, pipeline), broadcast=True, hash=False)
         sums = {str(s.path): client.submit(file_sha256, s.path, key=f"annotator-{run_id}-sha256-"
                                            f"{s.index:05d}", pure=False)
                 for s in plan.sources}
@@ -443,6 +472,10 @@ def run_dask(plan, *, progress=None, resume: bool = False, scheduler: str | None
                     exhausted = True
                     return
                 s, k = _work_ids(item)
+                if isinstance(item, Chunk):
+                    # Parsed rows go straight to a worker, not through the scheduler inside
+                    # the task; the task then runs where they are.
+                    item = client.scatter(item, hash=False)
                 future = client.submit(annotate_and_commit, shared, item, str(out),
                                        job.compression, key=f"annotator-{run_id}-part-"
                                        f"{s:05d}-{k:06d}", pure=False)
