@@ -13,6 +13,10 @@ disturbed figure), with the ratio with/baseline.  Target: ratio <= 1.20.
     python benchmarks/bench_uncertainty.py                  # 2 M rows, 3 repeats
     python benchmarks/bench_uncertainty.py --rows 10000000  # 10 M rows
     python benchmarks/bench_uncertainty.py --rows 200000 --repeats 1   # quick
+
+After the end-to-end runs, ``--breakdown`` (on by default) times one chunk in-process, split
+into reading, annotating and writing (the product's own Pipeline and write_parquet_atomic),
+to show where the added time goes.
 """
 
 from __future__ import annotations
@@ -76,6 +80,7 @@ def main() -> None:
                     help="comma-separated catalogue sizes (default 2M; e.g. 2000000,10000000)")
     ap.add_argument("--repeats", type=int, default=3)
     ap.add_argument("--chunk-rows", type=int, default=250_000)
+    ap.add_argument("--no-breakdown", dest="breakdown", action="store_false")
     args = ap.parse_args()
 
     print(f"{'rows':>11} {'':>5} {'baseline s':>10} {'with s':>8} {'ratio':>6} {'added s':>8} "
@@ -106,6 +111,58 @@ def main() -> None:
             print(f"{'':>11} {kind} runs (wall/CPU s): "
                   + ", ".join(f"{w:.2f}/{c:.2f}" for w, c in runs[kind])
                   + f"; peak {peaks[kind]:.0f} MiB")
+        if args.breakdown:
+            breakdown(src, args.chunk_rows, max(5, 3 * args.repeats))
+
+
+def breakdown(src: Path, chunk_rows: int, repeats: int) -> None:
+    """CPU ns/row of read / annotate / write for one chunk, baseline vs with (min of repeats)."""
+    import tempfile
+    import time
+
+    import numpy as np
+    import pyarrow.parquet as pq
+
+    from annotator.config import job_from_mapping
+    from annotator.io.writer import write_parquet_atomic
+    from annotator.pipeline import Pipeline
+    from annotator.plan import build_plan
+
+    def pipeline(text: str) -> Pipeline:
+        import tomllib
+
+        data = tomllib.loads(text.format(src=src, out=OUT / "unused", chunk=chunk_rows))
+        return Pipeline.from_plan(build_plan(job_from_mapping(data, base_dir=OUT)))
+
+    pipes = {"baseline": pipeline(BASELINE), "with": pipeline(WITH)}
+    reader = pq.ParquetFile(src)
+    with tempfile.TemporaryDirectory(dir=OUT) as tmp:
+        def once(pipe) -> np.ndarray:
+            t0 = time.process_time()
+            table = reader.read_row_group(0)
+            t1 = time.process_time()
+            out, _, _ = pipe.annotate(table)
+            t2 = time.process_time()
+            write_parquet_atomic(out, Path(tmp) / "part.parquet", compression="zstd")
+            t3 = time.process_time()
+            return np.array([t1 - t0, t2 - t1, t3 - t2, t3 - t0]) / table.num_rows * 1e9
+
+        res = {k: [] for k in pipes}
+        for kind, pipe in pipes.items():
+            once(pipe)  # tables built, caches warm
+        for _ in range(repeats):
+            for kind, pipe in pipes.items():
+                res[kind].append(once(pipe))
+    best = {k: np.min(v, axis=0) for k, v in res.items()}
+    print(f"one chunk, CPU ns/row (min of {repeats}):  {'read':>6} {'annotate':>9} "
+          f"{'write':>6} {'total':>6}")
+    for kind in pipes:
+        r, a, w, t = best[kind]
+        print(f"{kind:>37} {r:>6.0f} {a:>9.0f} {w:>6.0f} {t:>6.0f}")
+    added = best["with"] - best["baseline"]
+    print(f"{'added':>37} {added[0]:>6.0f} {added[1]:>9.0f} {added[2]:>6.0f} {added[3]:>6.0f}"
+          f"   (+{added[3] / best['baseline'][3]:.0%}; annotate alone "
+          f"+{added[1] / best['baseline'][3]:.0%} of the baseline total)")
 
 
 if __name__ == "__main__":

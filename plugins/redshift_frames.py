@@ -62,8 +62,8 @@ from ._redshift import REDSHIFT_HINTS
 from .uncertainties import ERROR_HINTS, as_nullable_float64, error_inputs
 
 FRAMES = ("heliocentric", "cmb")
-RA_HINTS = ("ra", "ra_deg", "radeg", "ra_icrs", "raj2000", "alpha")
-DEC_HINTS = ("dec", "dec_deg", "decdeg", "dec_icrs", "dej2000", "decj2000", "delta")
+RA_HINTS = ("ra", "ra_deg", "radeg", "ra_icrs", "raj2000")
+DEC_HINTS = ("dec", "dec_deg", "decdeg", "dec_icrs", "dej2000", "decj2000")
 
 # The north galactic pole and the ascending node, in the ICRS (ESA 1997, SP-1200, Vol. 1,
 # Sect. 1.5.3; from memory).

@@ -295,3 +295,23 @@ def test_galactic_to_icrs_round_trip():
     g = icrs_to_galactic_matrix() @ v
     assert math.degrees(math.atan2(g[1], g[0])) % 360 == pytest.approx(123.4, abs=1e-12)
     assert math.degrees(math.asin(g[2])) == pytest.approx(-56.7, abs=1e-12)
+
+
+def test_missing_position_column_is_a_plan_error(tmp_path):
+    from annotator.errors import PlanError
+
+    table = pa.table({"z": [0.5], "dec": [1.0]})
+    with pytest.raises(PlanError, match="'ra'"):
+        _plan(tmp_path, {"redshift_frame": "heliocentric"}, table=table)
+
+
+def test_pipeline_pickles_for_workers(tmp_path):
+    # Dask ships the pipeline to workers by pickle (common practice): same output after.
+    import pickle
+
+    plan = _plan(tmp_path, {"redshift_frame": "heliocentric"})
+    pipe = Pipeline.from_plan(plan)
+    before, _, _ = pipe.annotate(_table())
+    after, _, _ = pickle.loads(pickle.dumps(pipe)).annotate(_table())
+    added = [c.name for c in plan.added_columns] + ["annotation_flags"]
+    assert after.select(added).equals(before.select(added))  # (inputs hold a NaN != NaN)
