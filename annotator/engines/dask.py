@@ -15,7 +15,8 @@ a run started locally can be finished on a cluster and the other way round.
   (source, chunk index, rows per chunk), and the worker reads rows
   ``[k * chunk_rows, (k + 1) * chunk_rows)`` itself through the same
   :meth:`ParquetReader.chunks` the local engine uses (``start_chunk=k``, first chunk taken),
-  touching only the row groups those rows live in. The driver reads nothing but footers.
+  reading from the row group those rows start in (so row groups no larger than a chunk cost
+  nothing extra). The driver reads nothing but footers.
 * **CSV** sources cannot be cut at row ``k * chunk_rows`` without parsing everything before it:
   which lines are set aside (and so where chunk ``k`` begins) is only known after parsing.
   The driver therefore streams a CSV through the same :class:`CsvReader` (one thread, ahead of
@@ -45,7 +46,9 @@ fetches it again. Tasks are module-level functions with plain arguments (no lock
 handles travel).
 
 The output folder (and, for Parquet, the inputs) must be visible at the same path on the driver
-and on every worker (a shared filesystem); a check on each worker says so before any work starts.
+and on every worker (a shared filesystem). Before any part is written, each worker checks that,
+loads the job's code and annotates a small probe of the input, which the driver compares bit for
+bit with its own: a worker running other code or libraries is named and the run stops.
 """
 
 from __future__ import annotations
@@ -85,6 +88,8 @@ EARLIER_TASKS_WAIT_S = 600.0
 #: Tasks kept queued per worker thread: enough that no worker waits for the driver, few enough
 #: that a 10^10-row job never puts tens of thousands of tasks (or, for CSV, chunks) in flight.
 TASKS_PER_THREAD = 2
+#: Parsed CSV chunks the driver keeps ready to send.
+CSV_PREFETCH_CHUNKS = 8
 #: Rows of the input that the driver and every worker annotate before the run, to compare.
 PROBE_ROWS = 256
 
@@ -453,7 +458,8 @@ def run_dask(plan, *, progress=None, resume: bool = False, scheduler: str | None
         window = TASKS_PER_THREAD * threads
         work = pending_work(plan, done)
         if any(s.format != "parquet" for s in plan.sources):
-            work = _prefetch(work, depth=window)  # parse CSV ahead while the driver waits
+            # parse CSV ahead while the driver waits (bounded: the driver's memory)
+            work = _prefetch(work, depth=min(window, CSV_PREFETCH_CHUNKS))
         # as_completed() alone would track the futures on the default client's loop, which need not
         # be this client's (a second client in the process): a result lost with its worker and
         # recomputed would then wait on the wrong loop.
