@@ -99,6 +99,8 @@ PROBE_ROWS = 256
 # there.
 _worker_counts = {"pipelines_prepared": 0, "chunks_committed": 0}
 _prepare_lock = threading.Lock()
+# Output folder -> chunks being written to it by this process right now.
+_writing_to: dict[str, int] = {}
 
 
 # --------------------------------------------------------------------- worker side
@@ -175,10 +177,27 @@ def annotate_and_commit(shared: SharedPipeline, work: Chunk | ParquetChunkTask,
     if not out.is_dir():
         raise OutputError(f"output {out}: not visible on host {socket.gethostname()} (the Dask "
                           f"engine needs the output folder on a filesystem every worker sees)")
-    chunk = work.read() if isinstance(work, ParquetChunkTask) else work
-    record = process_chunk(_prepared(shared), chunk, out, compression)
+    with _prepare_lock:
+        _writing_to[output_dir] = _writing_to.get(output_dir, 0) + 1
+    try:
+        chunk = work.read() if isinstance(work, ParquetChunkTask) else work
+        record = process_chunk(_prepared(shared), chunk, out, compression)
+    finally:
+        with _prepare_lock:
+            _writing_to[output_dir] -= 1
+            if not _writing_to[output_dir]:
+                del _writing_to[output_dir]
     _worker_counts["chunks_committed"] += 1
     return record
+
+
+def chunks_in_progress(output_dir: str) -> int:
+    """How many chunks for ``output_dir`` this worker process is annotating or writing now.
+
+    The scheduler forgets the tasks of a client that died, but a task already running goes on
+    to the end on its worker; only the worker knows."""
+    with _prepare_lock:
+        return _writing_to.get(output_dir, 0)
 
 
 def worker_stats() -> dict:
@@ -374,28 +393,29 @@ def _check_workers(client, pipeline: Pipeline, plan, output_dir: Path) -> None:
 
 
 def output_tag(output_dir: Path) -> str:
-    """Part of every task key: which output folder the task writes to."""
+    """Part of every task key: which output folder the task writes to (as the dashboard and
+    the scheduler's logs show it)."""
     return hashlib.sha1(str(output_dir).encode()).hexdigest()[:10]
 
 
-def _wait_for_earlier_tasks(client, tag: str) -> None:
-    """Let the tasks of an earlier run on this folder finish before this run touches it.
+def _wait_for_earlier_tasks(client, output_dir: Path) -> None:
+    """Let chunks of an earlier run on this folder finish before this run touches it.
 
-    When a driver dies, the scheduler drops its queued tasks, but tasks already running go on
-    and commit their part. A resumed run must not start writing (or clearing the temporaries
-    of) the same parts meanwhile."""
-    prefix = f"annotator-{tag}-"
+    When a driver dies, the scheduler drops its tasks, but a task already running goes on and
+    commits its part. A resumed run must not clear the temporaries of, or write, the same parts
+    meanwhile; so it asks every worker, and waits."""
     deadline = time.monotonic() + EARLIER_TASKS_WAIT_S
     while True:
-        running = [k for keys in client.processing().values() for k in keys
-                   if str(k).startswith(prefix)]
-        if not running:
+        busy = {address: n for address, n in
+                client.run(chunks_in_progress, str(output_dir)).items() if n}
+        if not busy:
             return
         if time.monotonic() > deadline:
-            raise ConfigError(f"--engine dask: {len(running)} task(s) of an earlier run on this "
-                              f"output folder are still running on the cluster after "
-                              f"{EARLIER_TASKS_WAIT_S:.0f} s (e.g. {running[0]}); stop them "
-                              f"(restart the workers) and resume again")
+            address, n = sorted(busy.items())[0]
+            raise ConfigError(f"--engine dask: {sum(busy.values())} chunk(s) of an earlier run "
+                              f"on {output_dir} are still being written on the cluster after "
+                              f"{EARLIER_TASKS_WAIT_S:.0f} s (e.g. {n} on worker {address}); "
+                              f"restart those workers, then resume again")
         time.sleep(0.2)
 
 
@@ -440,7 +460,7 @@ def run_dask(plan, *, progress=None, resume: bool = False, scheduler: str | None
     out = Path(job.output_dir).resolve() if job.output_dir is not None else None
     with connect(scheduler, workers) as client:
         if out is not None:
-            _wait_for_earlier_tasks(client, output_tag(out))
+            _wait_for_earlier_tasks(client, out)
         log = prepare_output(plan, resume=resume)
         metadata = part_metadata(plan)
         pipeline = Pipeline.from_plan(plan, metadata)

@@ -405,3 +405,45 @@ def test_a_worker_computing_differently_is_refused_before_any_part(inputs, clust
     finally:
         client.run(unpatch, workers=[victim])
     assert not list((tmp_path / "dask").glob("part-*"))
+
+
+def test_a_new_run_waits_for_chunks_an_earlier_run_is_still_writing(inputs, cluster, client,
+                                                                   tmp_path, monkeypatch):
+    """A worker still writing into the folder (a task of a dead driver) holds the run back;
+    the run goes ahead once it is done."""
+    out = (tmp_path / "dask").resolve()
+    victim = sorted(client.scheduler_info()["workers"])[0]
+
+    def pretend_busy(folder, n):
+        from annotator.engines import dask as engine
+
+        if n:
+            engine._writing_to[folder] = n
+        else:
+            engine._writing_to.pop(folder, None)
+
+    client.run(pretend_busy, str(out), 1, workers=[victim])
+    monkeypatch.setattr(dask_engine, "EARLIER_TASKS_WAIT_S", 0.5)
+    try:
+        with pytest.raises(ConfigError, match="still being written"):
+            _run([inputs / "b.parquet"], out, "dask", cluster)
+    finally:
+        client.run(pretend_busy, str(out), 0, workers=[victim])
+    assert not out.exists()  # refused before the folder was touched
+    monkeypatch.setattr(dask_engine, "EARLIER_TASKS_WAIT_S", 30.0)
+    client.run(pretend_busy, str(out), 1, workers=[victim])
+    release = threading.Timer(1.0, lambda: client.run(pretend_busy, str(out), 0,
+                                                      workers=[victim]))
+    release.start()
+    t0 = time.monotonic()
+    m = _run([inputs / "b.parquet"], out, "dask", cluster)
+    assert time.monotonic() - t0 >= 0.9 and m["rows_written"] == 2345
+    release.join()
+
+
+def test_too_few_workers_joining_is_a_user_error(inputs, cluster, tmp_path, monkeypatch):
+    monkeypatch.setattr(dask_engine, "WORKER_WAIT_S", 0.5)
+    with pytest.raises(ConfigError, match="2 worker\\(s\\) connected, 5 wanted"):
+        _run_with([inputs / "b.parquet"], tmp_path / "never", scheduler=cluster.scheduler_address,
+                  workers=5)
+    assert not (tmp_path / "never").exists()
