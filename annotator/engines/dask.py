@@ -457,10 +457,11 @@ def run_dask(plan, *, progress=None, resume: bool = False, scheduler: str | None
     distributed = _import_distributed()
     job = plan.job
     started_at, t0 = now_iso(), time.perf_counter()
-    out = Path(job.output_dir).resolve() if job.output_dir is not None else None
+    if job.output_dir is None:  # said before a cluster is started or reached
+        raise OutputError("no output folder: give --out DIR or [output].dir")
+    out = Path(job.output_dir).resolve()
     with connect(scheduler, workers) as client:
-        if out is not None:
-            _wait_for_earlier_tasks(client, out)
+        _wait_for_earlier_tasks(client, out)
         log = prepare_output(plan, resume=resume)
         metadata = part_metadata(plan)
         pipeline = Pipeline.from_plan(plan, metadata)
