@@ -1,8 +1,8 @@
 """Pipeline throughput and memory against the I/O floor, measured in the same run.
 
 For each catalogue size: ``annotator run`` Parquet -> Parquet with every built-in annotator,
-then the I/O floor: read the annotated output and write it again with pyarrow, same codec,
-no annotation. Peak memory is each process's own maximum RSS. A CSV input is timed too.
+then the I/O floor: read the annotated output and write it again with pyarrow, same codec
+and encoding options, no annotation. Peak memory is each process's own maximum RSS. A CSV input is timed too.
 
     python benchmarks/bench_pipeline.py                     # 2 M and 10 M rows
     python benchmarks/bench_pipeline.py --rows 200000       # quick
@@ -22,12 +22,13 @@ from _common import DATA, OUT, annotator_cmd, measured, python_cmd, synthetic_ca
 IO_FLOOR = r"""
 import sys, glob, os
 import pyarrow.parquet as pq
+from annotator.io.writer import parquet_write_options
 src, dst, codec = sys.argv[1], sys.argv[2], sys.argv[3]
 os.makedirs(dst, exist_ok=True)
 for i, path in enumerate(sorted(glob.glob(os.path.join(src, "part-*.parquet")))):
     table = pq.read_table(path)
-    pq.write_table(table, os.path.join(dst, f"copy-{i:06d}.parquet"), compression=codec,
-                   row_group_size=table.num_rows)
+    pq.write_table(table, os.path.join(dst, f"copy-{i:06d}.parquet"),
+                   row_group_size=table.num_rows, **parquet_write_options(table.schema, codec))
 """
 
 

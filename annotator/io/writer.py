@@ -39,6 +39,19 @@ def _fsync_dir(path: Path) -> None:
         os.close(fd)
 
 
+def parquet_write_options(schema: pa.Schema, compression: str) -> dict:
+    """How every part is written (the I/O-floor benchmark writes with the same options).
+
+    Dictionary encoding only for non-float columns: on floating-point columns it almost never
+    pays (distinct values everywhere) and was measured to take ~70 % of the write time.
+    """
+    return {
+        "compression": None if compression == "none" else compression,
+        "use_dictionary": [f.name for f in schema if not pa.types.is_floating(f.type)],
+        "write_statistics": True,
+    }
+
+
 def write_parquet_atomic(
     table: pa.Table, path: Path, *, compression: str, metadata: dict | None = None
 ) -> int:
@@ -50,15 +63,9 @@ def write_parquet_atomic(
     tmp = path.with_name(path.name + TMP_SUFFIX)
     if metadata is not None:
         table = table.replace_schema_metadata(metadata)
-    codec = None if compression == "none" else compression
     with open(tmp, "wb") as fh:
-        pq.write_table(
-            table,
-            fh,
-            compression=codec,
-            row_group_size=max(table.num_rows, 1),
-            write_statistics=True,
-        )
+        pq.write_table(table, fh, row_group_size=max(table.num_rows, 1),
+                       **parquet_write_options(table.schema, compression))
         fh.flush()
         os.fsync(fh.fileno())
     os.replace(tmp, path)
