@@ -52,7 +52,8 @@ def format_table(jobs: list[dict]) -> str:
 
 def format_job(job: dict) -> str:
     out = [f"{job['id']}  {job['phase']}  {job.get('name') or ''}".rstrip()]
-    out.append(f"  rows      {_rows(job)} ({job['parts_done']} parts), {_rate(job)}, "
+    parts = f"{job['parts_done']} part{'s' if job['parts_done'] != 1 else ''}"
+    out.append(f"  rows      {_rows(job)} ({parts}), {_rate(job)}, "
                f"ETA {_eta(job)}")
     out.append(f"  output    {job['output']}")
     if job.get("manifest_path"):

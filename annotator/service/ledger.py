@@ -283,16 +283,17 @@ class Ledger:
         return cur.rowcount == 1
 
     def complete(self, identifier: str, *, manifest_path: str, rows_done: int,
-                 rows_per_second: float | None) -> bool:
+                 rows_per_second: float | None, parts_done: int | None = None) -> bool:
         now = time.time()
         with self._connect() as con:
             con.execute("BEGIN IMMEDIATE")
             cur = con.execute(
                 "UPDATE jobs SET phase = ?, manifest_path = ?, rows_done = ?, "
-                "rows_total = ?, rows_per_second = ?, eta_s = 0, error = NULL, "
-                "finished_at = ?, updated_at = ? WHERE seq = ? AND phase = ?",
-                (COMPLETED, manifest_path, rows_done, rows_done, rows_per_second, now, now,
-                 job_seq(identifier), EXECUTING))
+                "rows_total = ?, parts_done = COALESCE(?, parts_done), rows_per_second = ?, "
+                "eta_s = 0, error = NULL, finished_at = ?, updated_at = ? "
+                "WHERE seq = ? AND phase = ?",
+                (COMPLETED, manifest_path, rows_done, rows_done, parts_done, rows_per_second,
+                 now, now, job_seq(identifier), EXECUTING))
             if cur.rowcount == 1:
                 self._event(con, job_seq(identifier), COMPLETED, f"{rows_done} rows", now)
         return cur.rowcount == 1

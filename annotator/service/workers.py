@@ -208,7 +208,8 @@ def execute(ledger: Ledger, record, data_roots: list[Path]) -> str:
 
     rate = progress.rate(manifest["rows_read"]) or manifest.get("rows_per_second")
     ledger.complete(ident, manifest_path=str(Path(job.output_dir) / MANIFEST),
-                    rows_done=manifest["rows_read"], rows_per_second=rate)
+                    rows_done=manifest["rows_read"], rows_per_second=rate,
+                    parts_done=len(manifest.get("parts", [])) or None)
     return f"COMPLETED: {manifest['rows_read']} rows"
 
 

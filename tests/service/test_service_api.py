@@ -326,6 +326,7 @@ def test_submit_and_jobs_from_the_command_line(shared, data, tmp_path, capsys):
     mine = next(j for j in jobs if j["id"] == ident)
     assert {"id", "phase", "output", "error"} <= set(mine)
     assert mine["phase"] == "COMPLETED" and mine["error"] is None
+    assert mine["rows_done"] == SMALL_ROWS and mine["parts_done"] == SMALL_ROWS // CHUNK
     assert mine["phase"] in UWS_PHASES
     assert Path(mine["output"]).is_relative_to(shared.root)  # outputs only under the root
     code, out, err = cli(capsys, shared, "jobs")
