@@ -25,6 +25,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from fastapi import FastAPI, HTTPException, Request
+from starlette.exceptions import HTTPException as StarletteHTTPException
 from fastapi.concurrency import run_in_threadpool
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
@@ -257,8 +258,8 @@ def create_app(config: ServiceConfig) -> FastAPI:
     app.add_middleware(Guard, token=config.token, max_bytes=config.max_request_bytes)
     app.state.ledger, app.state.pool, app.state.config = ledger, pool, config
 
-    @app.exception_handler(HTTPException)
-    async def http_error(request, exc: HTTPException):
+    @app.exception_handler(StarletteHTTPException)
+    async def http_error(request, exc: StarletteHTTPException):
         return JSONResponse({"error": str(exc.detail)}, status_code=exc.status_code)
 
     @app.exception_handler(404)

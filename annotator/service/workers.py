@@ -157,6 +157,8 @@ def run_worker(root: str, ident: str, data_roots: list[str]) -> None:
     signal.signal(signal.SIGTERM, lambda signum, frame: os._exit(EXIT_STOPPED))
     ledger = Ledger(root)
     record = ledger.get(ident)
+    if record is None or record.phase != EXECUTING:
+        return  # aborted between its claim and this start
     folder = Path(record.folder)
     _redirect_output(folder)
     lock = acquire_lock(folder / LOCK_FILE)

@@ -424,6 +424,10 @@ def test_invalid_job_files_are_refused_naming_the_key(shared, data):
             assert needle in r.json()["error"], (needle, r.text)
         r = c.get("/jobs/job-424242")
         assert r.status_code == 404 and "no job" in r.json()["error"]
+        r = c.delete("/jobs")
+        assert r.status_code == 405 and r.json()["error"]
+        r = c.get("/nowhere")
+        assert r.status_code == 404 and "routes:" in r.json()["error"]
         r = c.get("/jobs", params={"phase": "SLEEPING"})
         assert r.status_code == 400 and "phase" in r.json()["error"]
 
@@ -452,6 +456,10 @@ def test_a_token_is_required_beyond_loopback_and_then_on_every_request(shared, d
     assert refused.returncode == 2
     assert "not a loopback address" in refused.stderr and "--token" in refused.stderr
     assert not (tmp_path / "r" / "service.json").exists()
+    # one service per root
+    second = subprocess.run([*cmd[:5], str(shared.root), *cmd[6:8]], capture_output=True,
+                            text=True, timeout=60, env=env)
+    assert second.returncode == 2 and "another service" in second.stderr, second.stderr
 
     import httpx
 
