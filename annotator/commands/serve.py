@@ -99,9 +99,13 @@ def main(args) -> int:
         other = (root / "service.lock").read_text().strip()
         raise ConfigError(f"--root {root}: another service (pid {other or 'unknown'}) is "
                           f"using this root; stop it first or choose another --root")
-    import uvicorn  # the heavy imports only once every check has passed
+    try:  # the heavy imports only once every check has passed
+        import uvicorn
 
-    from ..service.app import ServiceConfig, create_app
+        from ..service.app import ServiceConfig, create_app
+    except ImportError as exc:
+        raise ConfigError(f"annotator serve needs the 'service' extra ({exc.name} is missing): "
+                          f"pip install 'annotator[service]'") from None
 
     sock = _bind(args.host, args.port)
     url = _url(sock)

@@ -32,7 +32,7 @@ from fastapi.responses import JSONResponse
 
 from .. import __version__
 from ..errors import ConfigError, UserError
-from .ledger import ACTIVE, FINAL, PHASES, Ledger
+from .ledger import ACTIVE, PHASES, Ledger
 from .security import AccessError, check_input_files, check_input_paths, token_matches
 from .workers import WorkerPool, manifest_of
 
@@ -385,4 +385,4 @@ def _accept(ledger: Ledger, config: ServiceConfig, checked: Submission, name: st
     return ledger.get(record.id)
 
 
-__all__ = ["ServiceConfig", "create_app", "parse_job_body", "validate_submission", "FINAL"]
+__all__ = ["ServiceConfig", "create_app", "parse_job_body", "validate_submission"]

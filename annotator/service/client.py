@@ -69,7 +69,11 @@ class ServiceClient:
 
     def __init__(self, server: str | None = None, token: str | None = None,
                  timeout_s: float = 60.0):
-        import httpx
+        try:
+            import httpx
+        except ImportError:
+            raise ConfigError("talking to the service needs the 'service' extra (httpx is "
+                              "missing): pip install 'annotator[service]'") from None
 
         self.server = (server or default_server()).rstrip("/")
         if not self.server.startswith(("http://", "https://")):

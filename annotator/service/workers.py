@@ -37,7 +37,7 @@ import traceback
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from .ledger import ABORTED, EXECUTING, PENDING, Ledger
+from .ledger import EXECUTING, PENDING, Ledger
 
 LOCK_FILE = "worker.lock"
 LOG_FILE = "worker.log"
@@ -415,4 +415,4 @@ def manifest_of(record) -> dict | None:
         return None
 
 
-__all__ = ["WorkerPool", "run_worker", "execute", "manifest_of", "ABORTED"]
+__all__ = ["WorkerPool", "run_worker", "execute", "manifest_of"]
