@@ -10,14 +10,16 @@ apart from the run; the table shows both. Then the figures the on-paper scaling 
   does it (``client.submit`` + ``as_completed``).
 
     python benchmarks/bench_dask.py                  # 2 M rows
-    python benchmarks/bench_dask.py --rows 10000000  # the issue's 10 M rows
+    python benchmarks/bench_dask.py --rows 10000000 --repeat 3   # the issue's 10 M rows
     python benchmarks/bench_dask.py --rows 200000 --csv-rows 0   # quick
 """
 
 from __future__ import annotations
 
 import argparse
+import os
 import shutil
+import statistics
 import sys
 import time
 from pathlib import Path
@@ -109,6 +111,66 @@ def _compute_and_io(src: Path, chunk_rows: int, codec: str) -> dict:
             "in_bytes_per_row": in_bytes / rows, "out_bytes_per_row": out_bytes / rows}
 
 
+def _warmup_input(src: Path) -> Path:
+    import pyarrow.parquet as pq
+
+    path = DATA / "bench_dask_warmup.parquet"
+    if not path.exists():
+        pq.write_table(pq.ParquetFile(src).read_row_group(0).slice(0, 10_000), path)
+    return path
+
+
+def _round(args, src: Path, results: dict, scheduler_cost: dict, peaks: dict,
+           starts: dict, warmups: dict) -> None:
+    """One run of every configuration, appended to ``results`` (seconds per configuration)."""
+    from distributed import Client, LocalCluster
+
+    from annotator.engines.dask import reset_worker_stats, worker_stats
+
+    counts = [int(w) for w in args.workers.split(",")]
+    t, _ = _run(src, OUT / "dask_bench_local", args.chunk_rows, "local")
+    results.setdefault("local", []).append(t)
+    csv = None
+    if args.csv_rows:
+        csv = synthetic_catalogue(DATA / f"bench_{args.csv_rows}.csv", args.csv_rows, fmt="csv")
+        t, _ = _run(csv, OUT / "dask_bench_csv_local", args.chunk_rows, "local")
+        results.setdefault("csv local", []).append(t)
+    for n in counts:
+        t = time.perf_counter()
+        with LocalCluster(n_workers=n, processes=True, threads_per_worker=1,
+                          dashboard_address=":0") as cluster, Client(cluster) as client:
+            starts.setdefault(n, []).append(time.perf_counter() - t)
+            # The first job on fresh workers pays their imports (about 1 s); time it apart so
+            # the rows/s below are the steady state a long run sees.
+            t, _ = _run(_warmup_input(src), OUT / "dask_bench_warmup", args.chunk_rows, "dask",
+                        scheduler=cluster.scheduler_address)
+            warmups.setdefault(n, []).append(t)
+            client.run(reset_worker_stats)
+            t, manifest = _run(src, OUT / f"dask_bench_{n}", args.chunk_rows, "dask",
+                               scheduler=cluster.scheduler_address)
+            assert manifest["rows_written"] == args.rows
+            results.setdefault(f"dask {n}", []).append(t)
+            peaks[n] = max([peaks.get(n, 0.0)] + [s["peak_rss_mib"] for s in
+                                                  client.run(worker_stats).values()])
+            if n == max(counts) and args.row_group_rows:
+                import pyarrow.parquet as pq
+
+                coarse = DATA / f"bench_{args.rows}_rg{args.row_group_rows}.parquet"
+                if not coarse.exists():
+                    pq.write_table(pq.read_table(src), coarse, compression="zstd",
+                                   row_group_size=args.row_group_rows)
+                t, _ = _run(coarse, OUT / "dask_bench_coarse", args.chunk_rows, "dask",
+                            scheduler=cluster.scheduler_address)
+                results.setdefault(f"dask {n} coarse", []).append(t)
+            if n == max(counts) and csv is not None:
+                t, _ = _run(csv, OUT / "dask_bench_csv", args.chunk_rows, "dask",
+                            scheduler=cluster.scheduler_address)
+                results.setdefault(f"csv dask {n}", []).append(t)
+            scheduler_cost.setdefault(n, []).append(_scheduler_cost(client))
+        for d in OUT.glob("dask_bench_*"):
+            shutil.rmtree(d, ignore_errors=True)
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--rows", type=int, default=2_000_000, help="catalogue rows (default 2 M)")
@@ -117,62 +179,50 @@ def main() -> None:
     ap.add_argument("--csv-rows", type=int, default=500_000,
                     help="also time a CSV input of this many rows (0: skip)")
     ap.add_argument("--row-group-rows", type=int, default=0,
-                    help="also time the 2-worker run on a copy with row groups of this size "
-                         "(e.g. 1048576, to see the cost of chunks that cut row groups)")
+                    help="also time the largest cluster on a copy with row groups of this "
+                         "size (e.g. 1048576, to see the cost of chunks that cut row groups)")
+    ap.add_argument("--repeat", type=int, default=1,
+                    help="rounds of every configuration, interleaved (best and median shown; "
+                         "on a shared machine use 3)")
     ap.add_argument("--codec", default="zstd")
     args = ap.parse_args()
 
-    from distributed import Client, LocalCluster
-
-    from annotator.engines.dask import reset_worker_stats, worker_stats
-
     src = synthetic_catalogue(DATA / f"bench_{args.rows}.parquet", args.rows)
+    load = os.getloadavg()[0]
+    results: dict[str, list[float]] = {}
+    scheduler_cost: dict[int, list] = {}
+    peaks: dict[int, float] = {}
+    starts: dict[int, list[float]] = {}
+    warmups: dict[int, list[float]] = {}
+    for _ in range(args.repeat):
+        _round(args, src, results, scheduler_cost, peaks, starts, warmups)
     print(f"input: {src.name}, {args.rows:,} rows, {src.stat().st_size / 1e6:.0f} MB, "
-          f"chunk_rows {args.chunk_rows:,}")
-    print(f"{'engine':<22} {'start s':>8} {'run s':>8} {'rows/s':>12} {'speed-up':>9} "
-          f"{'worker peak MiB':>16}")
-    t_local, _ = _run(src, OUT / "dask_bench_local", args.chunk_rows, "local")
-    print(f"{'local':<22} {'-':>8} {t_local:>8.2f} {args.rows / t_local:>12,.0f} "
-          f"{1.0:>9.2f} {'-':>16}", flush=True)
-    scheduler_cost = {}
-    for n in [int(w) for w in args.workers.split(",")]:
-        t = time.perf_counter()
-        with LocalCluster(n_workers=n, processes=True, threads_per_worker=1,
-                          dashboard_address=":0") as cluster, Client(cluster) as client:
-            t_start = time.perf_counter() - t
-            client.run(reset_worker_stats)
-            t_run, manifest = _run(src, OUT / f"dask_bench_{n}", args.chunk_rows, "dask",
-                                   scheduler=cluster.scheduler_address)
-            assert manifest["rows_written"] == args.rows
-            peaks = [s["peak_rss_mib"] for s in client.run(worker_stats).values()]
-            print(f"{'dask, ' + str(n) + ' worker(s)':<22} {t_start:>8.2f} {t_run:>8.2f} "
-                  f"{args.rows / t_run:>12,.0f} {t_local / t_run:>9.2f} "
-                  f"{max(peaks):>16.0f}", flush=True)
-            if n == max(int(w) for w in args.workers.split(",")) and args.row_group_rows:
-                import pyarrow.parquet as pq
+          f"chunk_rows {args.chunk_rows:,}; {os.cpu_count()} CPUs, load average "
+          f"{load:.1f} before, {os.getloadavg()[0]:.1f} after; {args.repeat} round(s)")
+    print("start s: cluster start + first small job (the workers' imports), median")
+    print(f"{'engine':<26} {'start s':>8} {'best s':>8} {'median s':>9} {'rows/s (best)':>14} "
+          f"{'vs local':>9} {'worker peak MiB':>16}")
+    best_local = min(results["local"])
 
-                coarse = DATA / f"bench_{args.rows}_rg{args.row_group_rows}.parquet"
-                if not coarse.exists():
-                    pq.write_table(pq.read_table(src), coarse, compression="zstd",
-                                   row_group_size=args.row_group_rows)
-                t_coarse, _ = _run(coarse, OUT / "dask_bench_coarse", args.chunk_rows, "dask",
-                                   scheduler=cluster.scheduler_address)
-                label = f"  row groups {args.row_group_rows:,}"
-                print(f"{label:<22} {'':>8} {t_coarse:>8.2f} {args.rows / t_coarse:>12,.0f} "
-                      f"{t_local / t_coarse:>9.2f}", flush=True)
-            if args.csv_rows and n == max(int(w) for w in args.workers.split(",")):
-                csv = synthetic_catalogue(DATA / f"bench_{args.csv_rows}.csv", args.csv_rows,
-                                          fmt="csv")
-                t_csv_local, _ = _run(csv, OUT / "dask_bench_csv_local", args.chunk_rows,
-                                      "local")
-                t_csv, _ = _run(csv, OUT / "dask_bench_csv", args.chunk_rows, "dask",
-                                scheduler=cluster.scheduler_address)
-                print(f"CSV input, {args.csv_rows:,} rows (parsed by the driver): local "
-                      f"{args.csv_rows / t_csv_local:,.0f} rows/s, dask {n} workers "
-                      f"{args.csv_rows / t_csv:,.0f} rows/s", flush=True)
-            scheduler_cost[n] = _scheduler_cost(client)
-        for d in OUT.glob("dask_bench_*"):
-            shutil.rmtree(d, ignore_errors=True)
+    def row(label, times, rows, start="-", peak="-", reference=best_local):
+        print(f"{label:<26} {start:>8} {min(times):>8.2f} {statistics.median(times):>9.2f} "
+              f"{rows / min(times):>14,.0f} {reference / min(times):>9.2f} {peak:>16}",
+              flush=True)
+
+    row("local", results["local"], args.rows)
+    for n in sorted(starts):
+        row(f"dask, {n} worker(s)", results[f"dask {n}"], args.rows,
+            f"{statistics.median(starts[n]):.1f}+{statistics.median(warmups[n]):.1f}",
+            f"{peaks[n]:.0f}")
+        if f"dask {n} coarse" in results:
+            row(f"  row groups {args.row_group_rows:,}", results[f"dask {n} coarse"], args.rows)
+    if "csv local" in results:
+        best_csv = min(results["csv local"])
+        row(f"CSV {args.csv_rows:,}: local", results["csv local"], args.csv_rows,
+            reference=best_csv)
+        for key in [k for k in results if k.startswith("csv dask")]:
+            row(f"CSV {args.csv_rows:,}: {key[4:]} workers", results[key], args.csv_rows,
+                reference=best_csv)
 
     f = _compute_and_io(src, args.chunk_rows, args.codec)
     print("\nper core, chunks of {:,} rows (inputs for the scaling estimate):".format(
@@ -182,7 +232,9 @@ def main() -> None:
           f"({f['in_bytes_per_row']:.1f} bytes/row on disk)")
     print(f"  write annotated part      {f['rows'] / f['write_s']:>12,.0f} rows/s  "
           f"({f['out_bytes_per_row']:.1f} bytes/row on disk)")
-    for n, (at_once, windowed) in scheduler_cost.items():
+    for n, costs in scheduler_cost.items():
+        at_once = min(c[0] for c in costs)
+        windowed = min(c[1] for c in costs)
         print(f"  scheduler, empty tasks    {at_once * 1e3:>9.2f} ms per task submitted at once, "
               f"{windowed * 1e3:.2f} ms in the engine's window ({n} worker(s))")
 
