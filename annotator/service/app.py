@@ -240,6 +240,14 @@ def create_app(config: ServiceConfig) -> FastAPI:
     pool = WorkerPool(ledger, config.data_roots, workers=config.workers,
                       max_crashes=config.max_crashes)
     plugins = _PluginManager()
+    # One validation at a time: annotators' configure() need not be thread-safe, and
+    # validation is CPU-bound (the interpreter lock serialises it anyway).
+    validating = threading.Lock()
+
+    def validate(mapping: dict, base_dir: str | None) -> Submission:
+        with validating:
+            return validate_submission(mapping, base_dir=base_dir, config=config,
+                                       pm=plugins.get())
 
     @asynccontextmanager
     async def lifespan(app):
@@ -309,9 +317,7 @@ def create_app(config: ServiceConfig) -> FastAPI:
             raise HTTPException(400, f"name: at most {MAX_NAME_CHARS} printable characters")
         body = await _read_body(request, config.max_request_bytes)
         mapping = parse_job_body(body, request.headers.get("content-type"))
-        checked = await run_in_threadpool(
-            lambda: validate_submission(mapping, base_dir=base_dir, config=config,
-                                        pm=plugins.get()))
+        checked = await run_in_threadpool(validate, mapping, base_dir)
         suffix = ".json" if request.headers.get("content-type", "").startswith(JSON_TYPES) \
             else ".toml"
         record = await run_in_threadpool(_accept, ledger, config, checked, name, body, suffix)
