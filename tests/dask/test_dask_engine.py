@@ -46,7 +46,7 @@ RUN_KEYS = ("engine", "started_at", "finished_at", "elapsed_s", "rows_per_second
 @pytest.fixture(scope="module")
 def cluster():
     with distributed.LocalCluster(n_workers=2, processes=True, threads_per_worker=1,
-                                  dashboard_address=None) as c:
+                                  dashboard_address=":0") as c:
         yield c
 
 
