@@ -18,7 +18,8 @@ def run_plan(plan: Plan, *, engine: str = "local", progress=None, resume: bool =
     if engine == "dask":
         from .engines.dask import run_dask
 
-        return run_dask(plan, progress=progress, resume=resume, **(engine_options or {}))
+        return run_dask(plan, progress=progress, resume=resume, cancel=cancel,
+                        **(engine_options or {}))
     from .errors import ConfigError
 
     raise ConfigError(f"--engine: {engine!r} is not one of {', '.join(ENGINES)}")

@@ -27,7 +27,8 @@ def add_arguments(p) -> None:
     p.add_argument("--engine", choices=ENGINES, default="local")
     p.add_argument("--scheduler", metavar="ADDRESS", help="Dask scheduler address (dask engine)")
     p.add_argument("--workers", type=int, metavar="N",
-                   help="local Dask worker processes when no scheduler is given")
+                   help="dask engine: worker processes of the local cluster it starts; with "
+                        "--scheduler, wait until N workers have joined")
     p.add_argument("--quiet", action="store_true", help="no progress output")
 
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+import uuid
 from pathlib import Path
 
 import pyarrow as pa
@@ -60,7 +61,8 @@ def write_parquet_atomic(
     :return: the size of the file in bytes.
     """
     path = Path(path)
-    tmp = path.with_name(path.name + TMP_SUFFIX)
+    # unique per writer, so two processes committing the same part never share a temporary
+    tmp = path.with_name(f"{path.name}.{os.getpid()}.{uuid.uuid4().hex[:8]}{TMP_SUFFIX}")
     if metadata is not None:
         table = table.replace_schema_metadata(metadata)
     with open(tmp, "wb") as fh:
