@@ -25,7 +25,7 @@ SAMPLES = REPO / "sample_catalogues"
 
 PARQUET = SAMPLES / "quillfield_sample.parquet"
 CSV_GZ = SAMPLES / "quillfield_sample.csv.gz"
-# The documented commands (docs/samples.md) that made the committed files.
+# The documented commands (DEVELOPERS.md, "Regenerating the committed samples").
 PARQUET_COMMAND = ("python sample_catalogues/generate.py --rows 20000 --seed 20260101 "
                    "--out sample_catalogues/quillfield_sample.parquet")
 CSV_COMMAND = ("python sample_catalogues/generate.py --rows 4000 --seed 20260102 "
