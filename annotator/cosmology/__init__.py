@@ -2,7 +2,7 @@
 
 Pure numpy/scipy, no I/O.  A :class:`Cosmology` tabulates its integrals once (lazily,
 on first use) and then evaluates every quantity by vectorised cubic Hermite
-interpolation; see README.md in this folder for the API and accuracy.
+interpolation; DEVELOPERS.md ("The cosmology engine") documents the API and accuracy.
 """
 
 from . import constants
