@@ -17,7 +17,7 @@ from __future__ import annotations
 
 import os
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, ClassVar
 
@@ -181,23 +181,22 @@ class Batch:
         """Whether the logical input ``name`` is available (always true for ``requires``)."""
         return name in self._resolve
 
-    def array(self, name: str) -> pa.Array:
-        """The column as an Arrow array, with its own type and nulls."""
+    def _target(self, name: str) -> tuple[str, str]:
         target = self._resolve.get(name)
         if target is None:
             raise KeyError(f"annotator {self._owner!r} did not declare input {name!r}")
-        kind, column = target
+        return target
+
+    def array(self, name: str) -> pa.Array:
+        """The column as an Arrow array, with its own type and nulls."""
+        kind, column = self._target(name)
         if kind == "computed":
             return self._computed[column][0]
-        arr = self._record_batch.column(column)
-        return arr
+        return self._record_batch.column(column)
 
     def values(self, name: str) -> np.ndarray:
         """The column as float64 numpy values, NaN where null (read-only view when possible)."""
-        target = self._resolve.get(name)
-        if target is None:
-            raise KeyError(f"annotator {self._owner!r} did not declare input {name!r}")
-        kind, column = target
+        kind, column = self._target(name)
         if kind == "computed":
             entry = self._computed[column]
             if entry[1] is None:

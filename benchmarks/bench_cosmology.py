@@ -22,7 +22,7 @@ import numpy as np
 from scipy.integrate import quad
 from scipy.optimize import brentq
 
-from annotator.cosmology import Cosmology, constants as K, preset
+from annotator.cosmology import Cosmology, preset
 
 
 class ScriptedModel:

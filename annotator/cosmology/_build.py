@@ -342,7 +342,6 @@ class Tables:
 
     # ------------------------------------------------------- horizon tables
     def _horizon_tables(self):
-        bg = self.bg
         self.T_cross = None
         self.T_arrive_eta = None
         if self.has_eh:

@@ -284,7 +284,7 @@ class Cosmology:
         Either the full parameter set, or ``preset = "<name>"`` plus any overrides.
         Parameters not given take the constructor defaults (omega_de absent = flat).
         """
-        from .presets import PRESETS, _preset_params
+        from .presets import _preset_params
 
         if not isinstance(spec, Mapping):
             raise CosmologyError(

@@ -37,6 +37,30 @@ class Progress:
         return max(self.rows_total - self.rows_done, 0) / max(self.rows_per_second, 1e-9)
 
 
+class CommitLog:
+    """Appends each committed part's record to the checkpoint and reports progress.
+
+    Both engines commit through this, so their checkpoints and progress reports agree.
+    """
+
+    def __init__(self, log: CheckpointLog, records: list[dict], rows_total: int | None,
+                 progress=None):
+        self.log = log
+        self.rows_total = rows_total
+        self.progress = progress
+        self.rows_done = sum(r["rows_read"] for r in records)
+        self.parts_done = len(records)
+        self.t0 = time.perf_counter()
+
+    def commit(self, record: dict) -> None:
+        self.log.append(record)
+        self.rows_done += record["rows_read"]
+        self.parts_done += 1
+        if self.progress is not None:
+            self.progress(Progress(self.rows_done, self.rows_total, self.parts_done,
+                                   time.perf_counter() - self.t0))
+
+
 def _is_owned(p: Path) -> bool:
     return p.name in OWNED or (p.name.startswith("part-") and ".parquet" in p.name)
 

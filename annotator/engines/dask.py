@@ -75,7 +75,8 @@ from ..errors import ConfigError, InputError, OutputError, UserError
 from ..io.readers import Chunk, ParquetReader, Source, open_reader
 from ..pipeline import Pipeline
 from ..provenance import file_sha256, now_iso, part_metadata
-from .common import Progress, committed_chunks, finish, prepare_output, process_chunk
+from .common import (CommitLog, committed_chunks, finish, prepare_output,
+                     process_chunk)
 from .local import _prefetch
 
 #: How long to wait for workers to join an existing cluster (batch queues can be slow).
@@ -468,8 +469,7 @@ def run_dask(plan, *, progress=None, resume: bool = False, scheduler: str | None
         _check_workers(client, pipeline, plan, out)
         records = log.records()
         done = committed_chunks(records)
-        rows_done = sum(r["rows_read"] for r in records)
-        parts_done = len(records)
+        commits = CommitLog(log, records, plan.estimated_rows, progress)
         run_id = f"{output_tag(out)}-{uuid.uuid4().hex[:8]}"
         shared = client.scatter(SharedPipeline(run_id, pipeline), broadcast=True, hash=False)
         sums = {str(s.path): client.submit(file_sha256, s.path, key=f"annotator-{run_id}-sha256-"
@@ -517,12 +517,7 @@ def run_dask(plan, *, progress=None, resume: bool = False, scheduler: str | None
                     record = future.result()
                 except distributed.KilledWorker as exc:
                     raise _died_error(exc, str(future.key)) from exc
-                log.append(record)
-                rows_done += record["rows_read"]
-                parts_done += 1
-                if progress is not None:
-                    progress(Progress(rows_done, plan.estimated_rows, parts_done,
-                                      time.perf_counter() - t0))
+                commits.commit(record)
                 top_up()
         except BaseException:
             # Record what is already committed, so --resume redoes as little as possible;

@@ -16,7 +16,7 @@ from pathlib import Path
 from ..io.readers import open_reader
 from ..pipeline import Pipeline
 from ..provenance import file_sha256, now_iso, part_metadata
-from .common import Progress, committed_chunks, finish, prepare_output, write_chunk
+from .common import CommitLog, committed_chunks, finish, prepare_output, write_chunk
 
 _DONE = object()
 
@@ -87,8 +87,7 @@ def run_local(plan, *, progress=None, resume: bool = False, cancel=None) -> dict
     pipeline.prepare()
     records = log.records()
     done = committed_chunks(records)
-    rows_done = sum(r["rows_read"] for r in records)
-    parts_done = len(records)
+    commits = CommitLog(log, records, plan.estimated_rows, progress)
 
     with ThreadPoolExecutor(max_workers=1, thread_name_prefix="annotator-checksum") as hasher, \
             ThreadPoolExecutor(max_workers=1, thread_name_prefix="annotator-writer") as writer:
@@ -96,15 +95,8 @@ def run_local(plan, *, progress=None, resume: bool = False, cancel=None) -> dict
         in_flight: list[Future] = []
 
         def drain(limit: int) -> None:
-            nonlocal rows_done, parts_done
             while len(in_flight) > limit:
-                record = in_flight.pop(0).result()
-                log.append(record)
-                rows_done += record["rows_read"]
-                parts_done += 1
-                if progress is not None:
-                    progress(Progress(rows_done, plan.estimated_rows, parts_done,
-                                      time.perf_counter() - t0))
+                commits.commit(in_flight.pop(0).result())
 
         try:
             for chunk in _prefetch(iter_pending_chunks(plan, done), depth=2):
