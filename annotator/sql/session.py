@@ -147,32 +147,30 @@ def _call_hook(pm, hook_name: str, **kwargs) -> list[tuple[str, object]]:
     return out
 
 
+def _collect_named(pm, hook_name: str, cls: type, what: str, **kwargs) -> dict:
+    """``{name: (item, plugin)}`` from a hook; duplicates and items of the wrong kind are
+    refused, naming the plugins."""
+    found: dict = {}
+    for plugin, item in _call_hook(pm, hook_name, **kwargs):
+        if not isinstance(item, cls):
+            raise PluginError(f"plugin {plugin!r}: {hook_name} returned {item!r}, "
+                              f"not an annotator.sql.{cls.__name__}")
+        if item.name in found:
+            raise PluginError(f"{what} {item.name!r} is registered twice: by plugin "
+                              f"{found[item.name][1]!r} and by plugin {plugin!r}")
+        found[item.name] = (item, plugin)
+    return found
+
+
 def collect_sql_functions(pm, cosmology) -> dict[str, tuple[SqlFunction, str]]:
     """``{name: (function, plugin)}``; duplicates and non-functions are refused."""
-    found: dict[str, tuple[SqlFunction, str]] = {}
-    for plugin, fn in _call_hook(pm, "register_sql_functions", cosmology=cosmology):
-        if not isinstance(fn, SqlFunction):
-            raise PluginError(f"plugin {plugin!r}: register_sql_functions returned {fn!r}, "
-                              f"not an annotator.sql.SqlFunction")
-        if fn.name in found:
-            raise PluginError(f"SQL function {fn.name!r} is registered twice: by plugin "
-                              f"{found[fn.name][1]!r} and by plugin {plugin!r}")
-        found[fn.name] = (fn, plugin)
-    return found
+    return _collect_named(pm, "register_sql_functions", SqlFunction, "SQL function",
+                          cosmology=cosmology)
 
 
 def collect_selections(pm, manifest: dict) -> dict[str, tuple[Selection, str]]:
     """``{name: (selection, plugin)}``; duplicates and non-selections are refused."""
-    found: dict[str, tuple[Selection, str]] = {}
-    for plugin, sel in _call_hook(pm, "register_selections", manifest=manifest):
-        if not isinstance(sel, Selection):
-            raise PluginError(f"plugin {plugin!r}: register_selections returned {sel!r}, "
-                              f"not an annotator.sql.Selection")
-        if sel.name in found:
-            raise PluginError(f"selection {sel.name!r} is registered twice: by plugin "
-                              f"{found[sel.name][1]!r} and by plugin {plugin!r}")
-        found[sel.name] = (sel, plugin)
-    return found
+    return _collect_named(pm, "register_selections", Selection, "selection", manifest=manifest)
 
 
 # --------------------------------------------------------------------------- UDFs

@@ -2,13 +2,23 @@
 
 from __future__ import annotations
 
+import contextlib
+import io
 from functools import cached_property
 
 import pyarrow.parquet as pq
 import pytest
-from _sql_helpers import MagnitudesTestPlugin, make_catalogue, run_cli
+from _sql_helpers import MagnitudesTestPlugin, make_catalogue
+from _sql_helpers import run_cli as _run_cli
 
 ROWS = 5_000
+
+
+def run_cli(*argv) -> int:
+    """Make an output quietly: an output made lazily inside a test must not add its
+    printed folder to what that test captures from stdout."""
+    with contextlib.redirect_stdout(io.StringIO()):
+        return _run_cli(*argv)
 
 
 class Outputs:
