@@ -322,16 +322,18 @@ def describe_plan(plan: Plan) -> str:
     for s in plan.sources:
         lines.append(f"  {s.path}  ({s.format}, {s.size_bytes / 1e6:.1f} MB)")
     lines.append("column mapping:")
+    width = max((len(k) for k in plan.column_mapping), default=0)
     for logical, (col, how) in plan.column_mapping.items():
-        lines.append(f"  {logical:<20} <- {col}  ({how})")
+        lines.append(f"  {logical:<{width}} <- {col}  ({how})")
     c = plan.cosmology
     lines.append(f"cosmology: {c.to_dict().get('name') or 'custom'}  {c.to_dict()}")
     lines.append("annotators, in order:")
+    name_width = max((len(c.name) for c in plan.added_columns), default=0)
     for s in plan.steps:
         lines.append(f"  {s.name} {s.annotator.version}  [{s.registered.distribution}]")
         for col in s.annotator.provides:
-            lines.append(f"      + {col.name:<38} {str(col.type):<8} {col.unit or '':<6} "
-                         f"{col.ucd or ''}")
+            lines.append(f"      + {col.name:<{name_width}} {str(col.type):<7} "
+                         f"{col.unit or '-':<4} {col.ucd or ''}")
     for name, why in plan.skipped:
         lines.append(f"  ({name}: {why})")
     lines.append(f"      + {FLAGS_COLUMN.name}")
