@@ -48,7 +48,9 @@ class Annotator:
     Instance attributes (set by ``configure``):
 
     * ``requires`` / ``optional``: logical names it reads: catalogue inputs (``"redshift"``) or
-      columns other annotators add (``"comoving_distance_mpc"``).
+      columns other annotators add (``"comoving_distance_mpc"``). ``"observed:redshift"``
+      is the catalogue's own redshift column even when another annotator redefines
+      ``redshift`` (a K-correction wants the observed redshift, a distance the CMB-frame one).
     * ``provides``: the :class:`ColumnSpec` of each column it adds, in output order.
     * ``redefines``: ``{logical: column}``; later annotators that ask for ``logical`` get
       ``column`` instead (a CMB-frame redshift redefines ``"redshift"``).

@@ -72,6 +72,9 @@ class Plan:
         ]
 
 
+OBSERVED_PREFIX = "observed:"
+
+
 def _hints(registered: dict[str, RegisteredAnnotator]) -> dict[str, list[str]]:
     hints: dict[str, list[str]] = {}
     for reg in registered.values():
@@ -232,8 +235,20 @@ def build_plan(job: Job, pm=None) -> Plan:
     resolves: list[dict[str, tuple[str, str]]] = []
     for i, (inst, reg) in enumerate(configured):
         resolve: dict[str, tuple[str, str]] = {}
-        for logical, required in [(n, True) for n in inst.requires] + \
-                                 [(n, False) for n in inst.optional]:
+        for name, required in [(n, True) for n in inst.requires] + \
+                              [(n, False) for n in inst.optional]:
+            # "observed:<logical>" is the catalogue's own column, whatever redefines it
+            observed = name.startswith(OBSERVED_PREFIX)
+            logical = name[len(OBSERVED_PREFIX):] if observed else name
+            if observed:
+                found = catalogue_column(logical, inst)
+                if found is None and required:
+                    raise PlanError(f"annotator {reg.cls.name!r} needs the catalogue's own "
+                                    f"{logical!r} column, and {sources[0].path} has none; map "
+                                    f"it in the job file: [columns] {logical} = \"<column>\"")
+                if found is not None:
+                    resolve[name] = ("catalogue", found[0])
+                continue
             if logical in redefiners and redefiners[logical] != i:
                 j = redefiners[logical]
                 resolve[logical] = ("computed", configured[j][0].redefines[logical])

@@ -51,6 +51,7 @@ METHOD_KEYS = {
     "polynomial": ("method", "coefficients", "colour", "z_max", "colour_range"),
 }
 OPTIONS = ("tolerance_mag", "use_redshift_error")
+OBSERVED_REDSHIFT = "observed:redshift"
 REDSHIFT_ERROR_HINTS = ("redshift_error", "z_err", "zerr", "z_error", "redshift_err")
 DEFAULT_ALPHA_RANGE = (-10.0, 10.0)
 NO_DISTANCE = "absolute_magnitude_no_distance"
@@ -108,7 +109,10 @@ class KCorrection(Annotator):
         self.cosmology = cosmology
         self.use_redshift_error = use_redshift_error
         used = [b for b in bands if b.method is not None or self._is_colour_band(b.name)]
-        requires = ["redshift"]
+        # mu takes the cosmological redshift ("redshift", CMB-frame when a frame annotator
+        # redefines it); K takes the observed one: the spectrum is shifted by the redshift
+        # we actually see (Hogg et al. 2002, sect. 2).
+        requires = ["redshift", OBSERVED_REDSHIFT]
         column_map: dict[str, str] = {}
         for b in used:
             requires.append(b.magnitude_input)
@@ -187,9 +191,10 @@ class KCorrection(Annotator):
 
     # -- per batch -----------------------------------------------------------------------
     def annotate(self, batch):
-        z = batch.values("redshift")
+        z_cosmo = batch.values("redshift")
+        z = batch.values(OBSERVED_REDSHIFT)  # K and its derivatives
         with np.errstate(invalid="ignore"):
-            z_ok = np.where(np.isfinite(z) & (z >= 0), z, np.nan)
+            z_ok = np.where(np.isfinite(z_cosmo) & (z_cosmo >= 0), z_cosmo, np.nan)
         mu = np.asarray(self.cosmology.distance_modulus_mag(z_ok), dtype=np.float64)
         no_distance = ~np.isfinite(mu)
         if no_distance.any():

@@ -18,6 +18,7 @@ import annotator
 from annotator import Annotator, ColumnSpec, hookimpl
 from annotator.config import job_from_mapping
 from annotator.errors import ConfigError, PlanError, PluginError
+from annotator.pipeline import Pipeline
 from annotator.plan import build_plan
 from annotator.registry import collect_annotators, get_plugin_manager
 
@@ -180,7 +181,6 @@ def test_disabling_an_annotator_drops_its_columns(catalogue_parquet, tmp_path):
 
 
 def test_undeclared_flag_and_wrong_length_are_plugin_errors(catalogue_parquet, tmp_path):
-    from annotator.pipeline import Pipeline
 
     class Sloppy(Annotator):
         name = "sloppy"
@@ -263,3 +263,32 @@ def test_a_pip_installed_third_party_plugin_shows_up(tmp_path, catalogue_parquet
     listing = subprocess.run([sys.executable, "-m", "annotator", "plugins", "--json"], env=env,
                              capture_output=True, text=True, check=True)
     assert "brightness_rank" not in {r["name"] for r in json.loads(listing.stdout)}
+
+
+def test_observed_prefix_skips_redefinitions(catalogue_parquet, tmp_path):
+    class Shift(Annotator):
+        name = "shift_z"
+        position = 1
+        requires = ("redshift",)
+        provides = (ColumnSpec("z_shifted", pa.float64(), None, None, "z + 1"),)
+        redefines = {"redshift": "z_shifted"}
+
+        def annotate(self, batch):
+            return {"z_shifted": batch.values("redshift") + 1}
+
+    class Both(Annotator):
+        name = "both_z"
+        requires = ("redshift", "observed:redshift")
+        provides = (ColumnSpec("z_difference", pa.float64(), None, None, "shifted - own"),)
+
+        def annotate(self, batch):
+            return {"z_difference": batch.values("redshift") - batch.values("observed:redshift")}
+
+    pm = get_plugin_manager(extra_plugins=[_plugin(Shift, Both)])
+    plan = build_plan(_job(catalogue_parquet, tmp_path), pm)
+    step = next(s for s in plan.steps if s.name == "both_z")
+    assert step.resolve == {"redshift": ("computed", "z_shifted"),
+                            "observed:redshift": ("catalogue", "z")}
+    table, _, _ = Pipeline.from_plan(plan).annotate(pq.read_table(catalogue_parquet))
+    diff = table.column("z_difference").to_numpy(zero_copy_only=False)
+    np.testing.assert_allclose(diff[5:], 1.0)

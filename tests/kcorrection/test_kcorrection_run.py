@@ -234,3 +234,31 @@ def test_configured_annotator_pickles_for_dask_workers(tmp_path, curves):
     b = clone.bands[1].method.evaluate(z, c)[0]
     np.testing.assert_array_equal(a, b)
     assert len(pickle.dumps(inst)) < 2_000_000
+
+
+def test_k_takes_the_observed_redshift_and_mu_the_cmb_frame_one(tmp_path, curves):
+    """With a heliocentric catalogue, mu uses the CMB-frame redshift but K the observed one:
+    the spectrum is shifted by the redshift we see (Hogg et al. 2002, sect. 2)."""
+    z = np.array([0.01, 0.03, 0.1, 0.5, 1.0])
+    n = z.size
+    pq.write_table(pa.table({
+        "objid": np.arange(n, dtype=np.int64), "z": z, "ra": np.full(n, 168.0),
+        "dec": np.full(n, -7.0), "mag_b": np.full(n, 21.0),
+    }), tmp_path / "catalogue.parquet")
+    (tmp_path / "job.toml").write_text(
+        '[input]\npaths = ["catalogue.parquet"]\n[output]\ndir = "annotated"\n'
+        '[columns]\nredshift = "z"\nra = "ra"\ndec = "dec"\nredshift_frame = "heliocentric"\n'
+        '[bands.b]\nmagnitude = "mag_b"\nfilter = "filters/blue.csv"\n'
+        'kcorrection = { method = "power_law", alpha = 0.0 }\n')
+    assert main(["run", "--config", str(tmp_path / "job.toml"), "--quiet"]) == 0
+    out = tmp_path / "annotated"
+    table = pa.concat_tables(pq.read_table(p) for p in sorted(out.glob("part-*.parquet")))
+    z_cmb = column(table, "redshift_cmb")
+    assert np.all(np.abs(z_cmb - z) > 1e-4)  # the frame change is visible at this position
+    # Power law alpha = 0 (flat f_nu): K = -2.5 log10(1 + z) (Hogg et al. 2002, eq. 13)
+    k = column(table, "kcorrection_b_mag")
+    np.testing.assert_allclose(k, -2.5 * np.log10(1 + z), rtol=0, atol=1e-9)
+    mu = preset("planck2018").distance_modulus_mag(z_cmb)
+    np.testing.assert_allclose(column(table, "distance_modulus_mag"), mu, rtol=1e-12)
+    np.testing.assert_allclose(column(table, "absolute_magnitude_b_mag"), 21.0 - mu - k,
+                               rtol=0, atol=1e-12)
