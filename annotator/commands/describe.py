@@ -102,8 +102,9 @@ def render(d: dict) -> str:
                                                  for k, v in d["column_mapping"].items()))
     lines.append("")
     lines.append("flags:" if d["flags"] else "flags: none declared")
+    wr = max((len(f["reason"]) for f in d["flags"]), default=0)
     for f in d["flags"]:
-        lines.append(f"  {f['reason']:<28} {f['count']:>10}  {f['description']}")
+        lines.append(f"  {f['reason']:<{wr}} {f['count']:>10}  {f['description']}")
     lines.append("")
     cols = d["columns"]
     lines.append(f"columns ({len(cols)}; {sum(x['origin'] == 'added' for x in cols)} added):")
