@@ -12,4 +12,5 @@ COMMANDS = {
     "submit": "submit a job file to a running service",
     "jobs": "list the jobs of a running service",
     "abort": "abort a job of a running service",
+    "delete": "delete a finished job (and its output folder) from a running service",
 }

@@ -16,6 +16,7 @@ Routes (every answer is JSON; errors are ``{"error": "..."}`` with a 4xx/5xx sta
 from __future__ import annotations
 
 import json
+import shutil
 import sys
 import threading
 import time
@@ -32,7 +33,7 @@ from fastapi.responses import JSONResponse
 
 from .. import __version__
 from ..errors import ConfigError, UserError
-from .ledger import ACTIVE, PHASES, Ledger
+from .ledger import ACTIVE, FINAL, PHASES, Ledger
 from .security import AccessError, check_input_files, check_input_paths, token_matches
 from .workers import WorkerPool, manifest_of
 
@@ -352,6 +353,26 @@ def create_app(config: ServiceConfig) -> FastAPI:
                                      f"{', '.join(ACTIVE)} jobs can be aborted")
         pool.wake()
         return find(ident).to_api()
+
+    @app.delete("/jobs/{ident}")
+    def delete_job(ident: str) -> dict:
+        """Destroy a finished job: its ledger entry and its folder (in IVOA UWS 1.1 a job is
+        destroyed by DELETE on its resource; from memory), so nightly runs do not fill the
+        disk."""
+        record = find(ident)
+        if not ledger.delete(record.id):
+            record = find(ident)
+            raise HTTPException(409, f"job {record.id} is {record.phase}; only "
+                                     f"{', '.join(FINAL)} jobs can be deleted (abort it first)")
+        folder = Path(record.folder).resolve() if record.folder else None
+        removed = False
+        # only ever the job's own folder, directly under the service's jobs folder
+        if folder is not None and folder.parent == config.jobs_dir.resolve() \
+                and folder.name == record.id and folder.is_dir():
+            shutil.rmtree(folder, ignore_errors=True)
+            removed = not folder.exists()
+        return {"id": record.id, "phase": record.phase, "deleted": True,
+                "folder": str(folder) if folder else None, "folder_removed": removed}
 
     return app
 

@@ -140,6 +140,9 @@ class ServiceClient:
     def abort(self, ident: str) -> dict:
         return self._request("POST", f"/jobs/{ident}/abort")
 
+    def delete(self, ident: str) -> dict:
+        return self._request("DELETE", f"/jobs/{ident}")
+
     def wait(self, ident: str, *, timeout_s: float | None = None, poll_s: float = 1.0) -> dict:
         """Poll a job until it reaches COMPLETED, ERROR or ABORTED."""
         deadline = None if timeout_s is None else time.monotonic() + timeout_s

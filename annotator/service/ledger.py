@@ -325,6 +325,20 @@ class Ledger:
                 self._event(con, seq, ABORTED, message, now)
         return cur.rowcount == 1
 
+    def delete(self, identifier: str) -> bool:
+        """Forget a finished job (COMPLETED, ERROR, ABORTED) and its history; ids are never
+        reused (AUTOINCREMENT). Active jobs are refused: abort them first."""
+        seq = job_seq(identifier)
+        marks = ",".join("?" * len(FINAL))
+        with self._connect() as con:
+            con.execute("BEGIN IMMEDIATE")
+            # the history first: events reference the job
+            con.execute(f"DELETE FROM events WHERE job_seq = ? AND EXISTS (SELECT 1 FROM jobs "
+                        f"WHERE seq = ? AND phase IN ({marks}))", (seq, seq, *FINAL))
+            cur = con.execute(f"DELETE FROM jobs WHERE seq = ? AND phase IN ({marks})",
+                              (seq, *FINAL))
+        return cur.rowcount == 1
+
     def requeue(self, identifier: str, message: str, *, crashed: bool = False) -> bool:
         """Put an EXECUTING job back in the queue, keeping its place (submission order)."""
         now = time.time()

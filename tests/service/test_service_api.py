@@ -307,6 +307,17 @@ def test_abort_stops_the_worker_and_a_queued_job_never_runs(shared, data, capsys
     code, out, err = cli(capsys, service, "abort", "job-999999")
     assert code != 0 and "no job 'job-999999'" in err
 
+    # a finished job is destroyed by DELETE on its resource (IVOA UWS 1.1; from memory):
+    # the ledger forgets it and its folder goes
+    folder = Path(service.job(queued)["output"]).parent
+    assert folder.is_dir()
+    code, out, err = cli(capsys, service, "delete", queued)
+    assert code == 0 and out.startswith(f"{queued} deleted ({folder}"), err
+    assert not folder.exists()
+    assert queued not in {j["id"] for j in service.client().get("/jobs").json()["jobs"]}
+    code, out, err = cli(capsys, service, "delete", queued)
+    assert code != 0 and "(404)" in err
+
 
 # -- the command-line client ---------------------------------------------------------------
 

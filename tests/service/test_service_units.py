@@ -170,3 +170,16 @@ def test_the_client_resolves_relative_inputs_against_the_job_file(tmp_path):
     (folder / "job.json").write_text(json.dumps({"input": {"paths": "c.parquet"}}))
     mapping, _ = read_job_for_submission(folder / "job.json")
     assert mapping["input"]["paths"] == [str(folder.resolve() / "c.parquet")]
+
+
+def test_only_finished_jobs_are_deleted_and_ids_are_never_reused(tmp_path):
+    ledger, (a, b, c) = _ledger(tmp_path)
+    assert not ledger.delete(a)  # QUEUED: abort it first
+    assert ledger.abort(a) and ledger.delete(a)
+    assert ledger.get(a) is None and ledger.history(a) == []
+    assert not ledger.delete(a)  # already gone
+    assert ledger.abort(c) and ledger.delete(c)  # the newest: its id must not come back
+    fresh = ledger.create(name="d", job={"input": {"paths": ["/x"]}}, base_dir="/", notes=[],
+                          jobs_dir=tmp_path / "jobs")
+    assert fresh.id not in (a, b, c)
+    assert [r.id for r in ledger.list()] == [b, fresh.id]
