@@ -299,31 +299,12 @@ class Ledger:
         return cur.rowcount == 1
 
     def fail(self, identifier: str, error: str, *, from_phases=(EXECUTING,)) -> bool:
-        now = time.time()
-        seq = job_seq(identifier)
-        marks = ",".join("?" * len(from_phases))
-        with self._connect() as con:
-            con.execute("BEGIN IMMEDIATE")
-            cur = con.execute(
-                f"UPDATE jobs SET phase = ?, error = ?, eta_s = NULL, finished_at = ?, "
-                f"updated_at = ? WHERE seq = ? AND phase IN ({marks})",
-                (ERROR, error, now, now, seq, *from_phases))
-            if cur.rowcount == 1:
-                self._event(con, seq, ERROR, error, now)
-        return cur.rowcount == 1
+        return self._move(identifier, tuple(from_phases), ERROR, error, finished=True,
+                          assignments=", error = ?, eta_s = NULL", values=(error,))
 
     def abort(self, identifier: str, message: str = "aborted on request") -> bool:
-        now = time.time()
-        seq = job_seq(identifier)
-        marks = ",".join("?" * len(ACTIVE))
-        with self._connect() as con:
-            con.execute("BEGIN IMMEDIATE")
-            cur = con.execute(
-                f"UPDATE jobs SET phase = ?, eta_s = NULL, finished_at = ?, updated_at = ? "
-                f"WHERE seq = ? AND phase IN ({marks})", (ABORTED, now, now, seq, *ACTIVE))
-            if cur.rowcount == 1:
-                self._event(con, seq, ABORTED, message, now)
-        return cur.rowcount == 1
+        return self._move(identifier, ACTIVE, ABORTED, message, finished=True,
+                          assignments=", eta_s = NULL")
 
     def delete(self, identifier: str) -> bool:
         """Forget a finished job (COMPLETED, ERROR, ABORTED) and its history; ids are never
@@ -358,14 +339,21 @@ class Ledger:
             self._event(con, job_seq(identifier), phase, message, time.time())
 
     # -- internals -----------------------------------------------------------------------
-    def _move(self, identifier: str, sources: tuple[str, ...], target: str, message: str) -> bool:
+    def _move(self, identifier: str, sources: tuple[str, ...], target: str, message: str, *,
+              finished: bool = False, assignments: str = "", values: tuple = ()) -> bool:
+        """Move a job to ``target`` only from one of ``sources`` (the guard that lets a
+        finishing worker and an abort never both win), with extra ``assignments``."""
         now = time.time()
         seq = job_seq(identifier)
         marks = ",".join("?" * len(sources))
+        if finished:
+            assignments += ", finished_at = ?"
+            values = (*values, now)
         with self._connect() as con:
             con.execute("BEGIN IMMEDIATE")
-            cur = con.execute(f"UPDATE jobs SET phase = ?, updated_at = ? WHERE seq = ? AND "
-                              f"phase IN ({marks})", (target, now, seq, *sources))
+            cur = con.execute(f"UPDATE jobs SET phase = ?{assignments}, updated_at = ? "
+                              f"WHERE seq = ? AND phase IN ({marks})",
+                              (target, *values, now, seq, *sources))
             if cur.rowcount == 1:
                 self._event(con, seq, target, message, now)
         return cur.rowcount == 1
