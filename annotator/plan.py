@@ -16,7 +16,7 @@ from .columns import FLAGS_COLUMN, ColumnSpec
 from .config import Job
 from .errors import ConfigError, InputError, PlanError
 from .io.readers import Source, expand_inputs, open_reader
-from .registry import RegisteredAnnotator, collect_annotators, get_plugin_manager
+from .registry import RegisteredAnnotator, collect_annotators, load_registry
 
 
 @dataclass
@@ -91,7 +91,7 @@ def _position(reg: RegisteredAnnotator) -> tuple:
 def build_plan(job: Job, pm=None) -> Plan:
     from .cosmology import Cosmology, CosmologyError
 
-    pm = pm or get_plugin_manager()
+    pm = pm or load_registry()
     registered = collect_annotators(pm)
     ordered = sorted(registered.values(), key=_position)
 

@@ -2,7 +2,7 @@
 
 Built-in annotators live in ``plugins/`` (installed as ``annotator_plugins``) and are found
 through the same ``annotator`` entry-point group as any third-party package. Set
-``ANNOTATOR_DISABLE_PLUGIN_AUTOLOAD=1`` to load only the built-ins.
+``ANNOTATOR_BUILTINS_ONLY=1`` to load only the built-ins.
 """
 
 from __future__ import annotations
@@ -19,7 +19,7 @@ from .errors import PluginError
 
 ENTRY_POINT_GROUP = "annotator"
 BUILTIN_DISTRIBUTION = "annotator"
-AUTOLOAD_ENV = "ANNOTATOR_DISABLE_PLUGIN_AUTOLOAD"
+AUTOLOAD_ENV = "ANNOTATOR_BUILTINS_ONLY"
 
 
 @dataclass(frozen=True)
@@ -31,7 +31,7 @@ class RegisteredAnnotator:
     distribution: str  # "annotator (built-in)", "my-package 1.2", or "registered in code"
 
 
-def get_plugin_manager(*, extra_plugins=(), autoload: bool | None = None) -> pluggy.PluginManager:
+def load_registry(*, extra_plugins=(), autoload: bool | None = None) -> pluggy.PluginManager:
     """A fresh plugin manager with the hook specs, the entry points and ``extra_plugins``.
 
     :param extra_plugins: modules or objects to register directly (tests, embedding).

@@ -36,12 +36,12 @@ class ScriptedModel:
         self.om_tot = self.om + c.omega_nu
         self.dh, self.th = c.hubble_distance_mpc, c.hubble_time_gyr
 
-    def efunc(self, z):
+    def expansion_rate(self, z):
         zp = 1.0 + z
         return math.sqrt(self.orad * zp**4 + self.om_tot * zp**3 + self.ok * zp**2 + self.ode)
 
     def comoving(self, z):
-        return quad(lambda x: 1.0 / self.efunc(x), 0.0, z)[0] * self.dh
+        return quad(lambda x: 1.0 / self.expansion_rate(x), 0.0, z)[0] * self.dh
 
     def transverse(self, z):
         dc = self.comoving(z)
@@ -54,20 +54,20 @@ class ScriptedModel:
         return dc
 
     def lookback(self, z):
-        return quad(lambda x: 1.0 / ((1 + x) * self.efunc(x)), 0.0, z)[0] * self.th
+        return quad(lambda x: 1.0 / ((1 + x) * self.expansion_rate(x)), 0.0, z)[0] * self.th
 
     def age(self, z):
-        return quad(lambda x: 1.0 / ((1 + x) * self.efunc(x)), z, np.inf)[0] * self.th
+        return quad(lambda x: 1.0 / ((1 + x) * self.expansion_rate(x)), z, np.inf)[0] * self.th
 
     def event_horizon(self):
         # chi_EH = c int_{t0}^inf dt/a = D_H int_1^inf da / (a^2 E(a))
-        return quad(lambda a: 1.0 / (a * a * self.efunc(1.0 / a - 1.0)), 1.0, np.inf)[0] * self.dh
+        return quad(lambda a: 1.0 / (a * a * self.expansion_rate(1.0 / a - 1.0)), 1.0, np.inf)[0] * self.dh
 
     def remaining(self, a):
-        return quad(lambda b: 1.0 / (b * b * self.efunc(1.0 / b - 1.0)), a, np.inf)[0]
+        return quad(lambda b: 1.0 / (b * b * self.expansion_rate(1.0 / b - 1.0)), a, np.inf)[0]
 
     def age_at_a(self, a):
-        return quad(lambda b: 1.0 / (b * self.efunc(1.0 / b - 1.0)), 0.0, a)[0] * self.th
+        return quad(lambda b: 1.0 / (b * self.expansion_rate(1.0 / b - 1.0)), 0.0, a)[0] * self.th
 
     def crossing(self, z):
         chi = self.comoving(z) / self.dh
@@ -78,7 +78,7 @@ class ScriptedModel:
         chi = self.comoving(z) / self.dh
         if chi >= self.event_horizon() / self.dh:
             return math.nan
-        a = brentq(lambda aa: quad(lambda b: 1.0 / (b * b * self.efunc(1.0 / b - 1.0)),
+        a = brentq(lambda aa: quad(lambda b: 1.0 / (b * b * self.expansion_rate(1.0 / b - 1.0)),
                                    1.0, aa)[0] - chi, 1.0, 1e6)
         return self.age_at_a(a)
 
@@ -87,8 +87,8 @@ def per_value(s):
     """Per-value reference implementations of every quantity."""
     dh = s.dh
     return {
-        "efunc": s.efunc,
-        "hubble_parameter_km_s_mpc": lambda z: s.c.h0 * s.efunc(z),
+        "expansion_rate": s.expansion_rate,
+        "hubble_parameter_km_s_mpc": lambda z: s.c.h0 * s.expansion_rate(z),
         "comoving_distance_mpc": s.comoving,
         "transverse_comoving_distance_mpc": s.transverse,
         "angular_diameter_distance_mpc": lambda z: s.transverse(z) / (1 + z),
@@ -97,12 +97,12 @@ def per_value(s):
         "lookback_time_gyr": s.lookback,
         "age_at_emission_gyr": s.age,
         "comoving_volume_mpc3": lambda z: 4 * math.pi / 3 * s.transverse(z) ** 3,
-        "differential_comoving_volume_mpc3_sr": lambda z: dh * s.transverse(z) ** 2 / s.efunc(z),
+        "differential_comoving_volume_mpc3_sr": lambda z: dh * s.transverse(z) ** 2 / s.expansion_rate(z),
         "recession_velocity_now_c": lambda z: s.comoving(z) / dh,
-        "recession_velocity_at_emission_c": lambda z: s.comoving(z) / dh * s.efunc(z) / (1 + z),
-        "dcomoving_distance_dz_mpc": lambda z: dh / s.efunc(z),
-        "dtransverse_comoving_distance_dz_mpc": lambda z: dh / s.efunc(z),
-        "dlookback_time_dz_gyr": lambda z: s.th / ((1 + z) * s.efunc(z)),
+        "recession_velocity_at_emission_c": lambda z: s.comoving(z) / dh * s.expansion_rate(z) / (1 + z),
+        "dcomoving_distance_dz_mpc": lambda z: dh / s.expansion_rate(z),
+        "dtransverse_comoving_distance_dz_mpc": lambda z: dh / s.expansion_rate(z),
+        "dlookback_time_dz_gyr": lambda z: s.th / ((1 + z) * s.expansion_rate(z)),
         "reachable": lambda z: s.comoving(z) < s.event_horizon(),
         "horizon_crossing_age_gyr": s.crossing,
         "signal_arrival_age_gyr": s.arrival,

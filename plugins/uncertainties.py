@@ -285,7 +285,7 @@ class Uncertainties(Annotator):
         """|d quantity / dz| at z (NaN where z is NaN), by column stem; fresh arrays."""
         c = self.cosmology
         ddc = c.dcomoving_distance_dz_mpc(z)
-        ddm = ddc if c.is_flat else c.dtransverse_comoving_distance_dz_mpc(z)
+        ddm = ddc if c.flat_space else c.dtransverse_comoving_distance_dz_mpc(z)
         dm = c.transverse_comoving_distance_mpc(z)
         one_plus_z = z + 1.0
         ddl = np.multiply(ddm, one_plus_z)

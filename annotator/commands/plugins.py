@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import json
 
-from ..registry import collect_annotators, get_plugin_manager
+from ..registry import collect_annotators, load_registry
 
 
 def add_arguments(p) -> None:
@@ -28,7 +28,7 @@ def _describe(reg) -> dict:
 
 
 def main(args) -> int:
-    pm = get_plugin_manager()
+    pm = load_registry()
     found = sorted(collect_annotators(pm).values(), key=lambda r: (r.cls.position, r.cls.name))
     records = [_describe(r) for r in found]
     if args.json:

@@ -149,10 +149,10 @@ def main(args) -> int:
             elif fmt == "table":
                 shown, more = write_table(reader, sys.stdout, args.max_rows)
                 if more:
-                    print(f"(first {shown} rows shown; more not shown: raise --max-rows, or "
+                    print(f"result: first {shown} rows shown, more not shown (raise --max-rows, or "
                           f"use --format csv / --to FILE for all)")
                 else:
-                    print(f"({shown} row{'s' if shown != 1 else ''})")
+                    print(f"result: {shown} row{'s' if shown != 1 else ''}")
             elif fmt == "csv":
                 sys.stdout.flush()
                 write_csv(reader, sys.stdout.buffer)

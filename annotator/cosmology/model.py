@@ -228,7 +228,7 @@ class Cosmology:
     omega_radiation = property(lambda self: self._bg.omega_rad,
                                doc="photons + massless neutrinos today")
     omega_nu = property(lambda self: self._bg.omega_nu, doc="massive neutrinos today")
-    is_flat = property(lambda self: self._bg.omega_k == 0.0)
+    flat_space = property(lambda self: self._bg.omega_k == 0.0)
 
     @property
     def hubble_distance_mpc(self):
@@ -371,9 +371,9 @@ class Cosmology:
         }
 
     # --------------------------------------------------- vectorised quantities
-    def efunc(self, z):
+    def expansion_rate(self, z):
         """E(z) = H(z)/H0."""
-        return self._t().run(z, "efunc")
+        return self._t().run(z, "expansion_rate")
 
     def hubble_parameter_km_s_mpc(self, z):
         return self._t().run(z, "hubble")
@@ -503,7 +503,7 @@ class _ScaledTables:
         T = tb.T
         self.k = {}
         kk = self.k
-        kk["efunc"] = (T["ln_e"], _exp)
+        kk["expansion_rate"] = (T["ln_e"], _exp)
         kk["hubble"] = (T["ln_e"].scaled(1.0, math.log(cosmo.h0)), _exp)
         kk["chi"] = (T["chi/u"].scaled(dh), _times_u)
         kk["v_now"] = (T["chi/u"], _times_u)

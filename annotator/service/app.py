@@ -388,9 +388,9 @@ class _PluginManager:
     def get(self):
         with self._lock:
             if self._pm is None:
-                from ..registry import get_plugin_manager
+                from ..registry import load_registry
 
-                self._pm = get_plugin_manager()
+                self._pm = load_registry()
             return self._pm
 
 

@@ -42,9 +42,9 @@ def warm() -> list[str]:
             failed.append(ep.module)
     if not failed:
         global plugin_manager
-        from annotator.registry import get_plugin_manager
+        from annotator.registry import load_registry
 
-        plugin_manager = get_plugin_manager()
+        plugin_manager = load_registry()
     return failed
 
 

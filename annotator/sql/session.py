@@ -314,7 +314,7 @@ class QuerySession:
     def __init__(self, folder: str | Path, *, attach: Mapping[str, str | Path] | None = None,
                  read_paths: Iterable[str | Path] = (), write_to: str | Path | None = None,
                  pm=None):
-        from ..registry import get_plugin_manager
+        from ..registry import load_registry
 
         self.output = OutputFolder.open(folder)
         self.attached: dict[str, OutputFolder] = {}
@@ -341,7 +341,7 @@ class QuerySession:
             self.write_to = target
             self._tmp_target = target.with_name(f".{target.name}.{os.getpid()}.tmp")
 
-        self.pm = pm or get_plugin_manager()
+        self.pm = pm or load_registry()
         self.functions = collect_sql_functions(self.pm, self.output.cosmology)
         self.selections = collect_selections(self.pm, self.output.manifest)
         self._tmpdir = tempfile.mkdtemp(prefix="annotator-sql-")

@@ -19,7 +19,7 @@ from annotator.config import job_from_mapping
 from annotator.errors import ConfigError, PlanError, PluginError
 from annotator.pipeline import Pipeline
 from annotator.plan import build_plan
-from annotator.registry import collect_annotators, get_plugin_manager
+from annotator.registry import collect_annotators, load_registry
 
 
 _counter = iter(range(10**6))
@@ -64,7 +64,7 @@ def _job(path, tmp_path, **extra):
 
 
 def test_builtins_come_from_the_entry_point_group():
-    found = collect_annotators(get_plugin_manager())
+    found = collect_annotators(load_registry())
     for name in ("redshift_checks", "distances", "times", "velocities", "horizons"):
         assert name in found
         assert found[name].distribution.endswith("(built-in)")
@@ -98,14 +98,14 @@ def test_misspelt_hook_fails_loudly():
 
     mod.register_annotator = register_annotator
     with pytest.raises(PluginError, match="register_annotator"):
-        get_plugin_manager(extra_plugins=[mod])
+        load_registry(extra_plugins=[mod])
 
 
 def test_duplicate_annotator_name_names_both_plugins():
     class Clash(DoubleZ):
         pass
 
-    pm = get_plugin_manager(extra_plugins=[_plugin(DoubleZ), _plugin(Clash)])
+    pm = load_registry(extra_plugins=[_plugin(DoubleZ), _plugin(Clash)])
     with pytest.raises(PluginError, match="double_z.*registered twice"):
         collect_annotators(pm)
 
@@ -116,7 +116,7 @@ def test_output_column_clash_is_refused_before_reading(catalogue_parquet, tmp_pa
         requires = ("redshift",)
         provides = (ColumnSpec("comoving_distance_mpc", pa.float64(), "Mpc", None, "x"),)
 
-    pm = get_plugin_manager(extra_plugins=[_plugin(Other)])
+    pm = load_registry(extra_plugins=[_plugin(Other)])
     with pytest.raises(PlanError, match="comoving_distance_mpc.*two annotators.*distances.*other"):
         build_plan(_job(catalogue_parquet, tmp_path), pm)
 
@@ -130,7 +130,7 @@ def test_catalogue_column_clash_is_refused(tmp_path, catalogue_table):
 
 
 def test_dependencies_order_annotators(catalogue_parquet, tmp_path):
-    pm = get_plugin_manager(extra_plugins=[_plugin(DoubleZ, UsesDoubleZ)])
+    pm = load_registry(extra_plugins=[_plugin(DoubleZ, UsesDoubleZ)])
     plan = build_plan(_job(catalogue_parquet, tmp_path), pm)
     names = [s.name for s in plan.steps]
     assert names.index("double_z") < names.index("uses_double_z")
@@ -149,7 +149,7 @@ def test_cycle_is_refused(catalogue_parquet, tmp_path):
         requires = ("col_a",)
         provides = (ColumnSpec("col_b", pa.float64(), None, None, "b"),)
 
-    pm = get_plugin_manager(extra_plugins=[_plugin(A, B)])
+    pm = load_registry(extra_plugins=[_plugin(A, B)])
     with pytest.raises(PlanError, match="cycle"):
         build_plan(_job(catalogue_parquet, tmp_path), pm)
 
@@ -199,7 +199,7 @@ def test_undeclared_flag_and_wrong_length_are_plugin_errors(catalogue_parquet, t
 
     table = pq.read_table(catalogue_parquet)
     for cls, pattern in ((Sloppy, "never_declared"), (Short, "values for a batch")):
-        pm = get_plugin_manager(extra_plugins=[_plugin(cls)])
+        pm = load_registry(extra_plugins=[_plugin(cls)])
         plan = build_plan(_job(catalogue_parquet, tmp_path), pm)
         with pytest.raises(PluginError, match=pattern):
             Pipeline.from_plan(plan).annotate(table)
@@ -258,7 +258,7 @@ def test_a_pip_installed_third_party_plugin_shows_up(tmp_path, catalogue_parquet
         a for a in manifest["annotators"] if a["name"] == "brightness_rank").items()
 
     # the switch turns third-party autoload off
-    env["ANNOTATOR_DISABLE_PLUGIN_AUTOLOAD"] = "1"
+    env["ANNOTATOR_BUILTINS_ONLY"] = "1"
     listing = subprocess.run([sys.executable, "-m", "annotator", "plugins", "--json"], env=env,
                              capture_output=True, text=True, check=True)
     assert "brightness_rank" not in {r["name"] for r in json.loads(listing.stdout)}
@@ -283,7 +283,7 @@ def test_observed_prefix_skips_redefinitions(catalogue_parquet, tmp_path):
         def annotate(self, batch):
             return {"z_difference": batch.values("redshift") - batch.values("observed:redshift")}
 
-    pm = get_plugin_manager(extra_plugins=[_plugin(Shift, Both)])
+    pm = load_registry(extra_plugins=[_plugin(Shift, Both)])
     plan = build_plan(_job(catalogue_parquet, tmp_path), pm)
     step = next(s for s in plan.steps if s.name == "both_z")
     assert step.resolve == {"redshift": ("computed", "z_shifted"),

@@ -59,7 +59,7 @@ class Reference:
         except OverflowError:  # far future of a growing dark energy: H is infinite
             return math.inf
 
-    def efunc(self, z):
+    def expansion_rate(self, z):
         return self.e_a(1 / (1 + z))
 
     # --- integrals in x = ln a (dimensionless: c/H0 and 1/H0) --------------------
@@ -113,7 +113,7 @@ class Reference:
     def volume(self, z):
         """4 pi integral of D_M^2 dD_C (Hogg 1999 eq. 29 in integral form)."""
         def f(zz):
-            return self.transverse(zz) ** 2 * self.dh / self.efunc(zz)
+            return self.transverse(zz) ** 2 * self.dh / self.expansion_rate(zz)
         # nested quadrature is slow; integrate in ln(1+z)
         return 4 * math.pi * quad(lambda u: f(math.expm1(u)) * math.exp(u), 0,
                                   math.log1p(z), epsabs=0, epsrel=1e-11, limit=200)[0]

@@ -12,7 +12,7 @@ from _cosmo_models import built
 from annotator.cosmology import preset
 
 Z_FUNCS = [
-    "efunc", "hubble_parameter_km_s_mpc", "comoving_distance_mpc",
+    "expansion_rate", "hubble_parameter_km_s_mpc", "comoving_distance_mpc",
     "transverse_comoving_distance_mpc", "angular_diameter_distance_mpc",
     "luminosity_distance_mpc", "distance_modulus_mag", "lookback_time_gyr",
     "age_at_emission_gyr", "comoving_volume_mpc3", "differential_comoving_volume_mpc3_sr",

@@ -93,7 +93,7 @@ def test_presets():
 
 def test_from_dict():
     c = Cosmology.from_dict({"preset": "planck2018", "h0": 70.0})
-    assert c.h0 == 70.0 and c.omega_m == 0.30966 and c.is_flat
+    assert c.h0 == 70.0 and c.omega_m == 0.30966 and c.flat_space
     assert "planck2018" in c.name
     c = Cosmology.from_dict({"h0": 70, "omega_m": 0.3, "omega_de": 0.6, "name": "open"})
     assert c.omega_k == pytest.approx(0.1) and c.name == "open"

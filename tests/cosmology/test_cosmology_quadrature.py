@@ -29,10 +29,10 @@ def rel(a, b):
     return np.max(np.abs(a / b - 1.0))
 
 
-def test_efunc_and_hubble(model):
+def test_expansion_rate_and_hubble(model):
     c, r = model
-    ref = np.array([r.efunc(z) for z in Z_RANDOM])
-    assert rel(c.efunc(Z_RANDOM), ref) <= TOL
+    ref = np.array([r.expansion_rate(z) for z in Z_RANDOM])
+    assert rel(c.expansion_rate(Z_RANDOM), ref) <= TOL
     assert rel(c.hubble_parameter_km_s_mpc(Z_RANDOM), c.h0 * ref) <= TOL
 
 
@@ -41,7 +41,7 @@ def test_densities_today(model):
     assert c.omega_gamma == pytest.approx(r.og, rel=1e-12, abs=1e-300)
     assert c.omega_nu == pytest.approx(r.onu0, rel=1e-12, abs=1e-300)
     assert c.omega_k == pytest.approx(r.ok, rel=1e-9, abs=1e-14)
-    assert float(c.efunc(0.0)) == pytest.approx(1.0, abs=1e-14)
+    assert float(c.expansion_rate(0.0)) == pytest.approx(1.0, abs=1e-14)
 
 
 def test_distances(model):
@@ -55,7 +55,7 @@ def test_distances(model):
     mu_ref = 5 * np.log10(dm * (1 + Z_RANDOM) / K.TEN_PC_IN_MPC)
     assert np.max(np.abs(c.distance_modulus_mag(Z_RANDOM) - mu_ref)) <= 5 / math.log(10) * TOL
     # recession velocities (in c): now D_C H0 / c, at emission D_C/(1+z) H(z) / c
-    e = np.array([r.efunc(z) for z in Z_RANDOM])
+    e = np.array([r.expansion_rate(z) for z in Z_RANDOM])
     assert rel(c.recession_velocity_now_c(Z_RANDOM), dc / r.dh) <= TOL
     assert rel(c.recession_velocity_at_emission_c(Z_RANDOM), dc / r.dh * e / (1 + Z_RANDOM)) <= TOL
 
@@ -71,7 +71,7 @@ def test_times(model):
 
 def test_exact_derivatives(model):
     c, r = model
-    e = np.array([r.efunc(z) for z in Z_RANDOM])
+    e = np.array([r.expansion_rate(z) for z in Z_RANDOM])
     assert rel(c.dcomoving_distance_dz_mpc(Z_RANDOM), r.dh / e) <= TOL
     assert rel(c.dlookback_time_dz_gyr(Z_RANDOM), r.th / ((1 + Z_RANDOM) * e)) <= TOL
     # dD_M/dz = cosn(sqrt|Ok| D_C/D_H) D_H/E (derivative of Hogg 1999 eq. 16)
@@ -87,7 +87,7 @@ def test_comoving_volume(model):
     ref = np.array([r.volume(z) for z in zs])
     assert rel(c.comoving_volume_mpc3(zs), ref) <= TOL
     dm = np.array([r.transverse(z) for z in zs])
-    e = np.array([r.efunc(z) for z in zs])
+    e = np.array([r.expansion_rate(z) for z in zs])
     # Hogg 1999 eq. 28: dV/dz/dOmega = D_H D_M^2 / E
     assert rel(c.differential_comoving_volume_mpc3_sr(zs), r.dh * dm**2 / e) <= TOL
 

@@ -39,7 +39,7 @@ def test_random_model(c):
     dc = c.comoving_distance_mpc(Z)
     age = c.age_at_emission_gyr(Z)
     for q in (dc, age, c.luminosity_distance_mpc(Z), c.lookback_time_gyr(Z),
-              c.comoving_volume_mpc3(Z), c.efunc(Z)):
+              c.comoving_volume_mpc3(Z), c.expansion_rate(Z)):
         assert np.isfinite(q).all()
     assert (np.diff(dc) >= 0).all() and (np.diff(age) <= 0).all()
     zz = Z[1:]

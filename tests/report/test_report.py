@@ -30,7 +30,7 @@ import pytest
 from annotator import Annotator, ColumnSpec, hookimpl
 from annotator.cli import main
 from annotator.config import load_job
-from annotator.registry import get_plugin_manager
+from annotator.registry import load_registry
 from annotator.report import build_report
 from annotator.report.data import draw_sample, open_output
 from annotator.report.figures import _ra_span, faint_edge
@@ -403,7 +403,7 @@ def test_rejected_rows_and_bands(tmp_path):
     cat.write_text("\n".join(lines) + "\n")
     out = tmp_path / "out"
     job = load_job(None, inputs=[str(cat)], output_dir=str(out), chunk_rows=1000)
-    manifest = run_job(job, pm=get_plugin_manager(extra_plugins=[_Plugin()]))
+    manifest = run_job(job, pm=load_registry(extra_plugins=[_Plugin()]))
     assert manifest["rows_rejected"] == 3
     assert open_output(out).bands == {"r": "absolute_magnitude_r_mag"}
     report = tmp_path / "r.html"

@@ -64,10 +64,10 @@ def outputs(tmp_path_factory):
 @pytest.fixture(scope="session")
 def output_with_magnitudes(outputs):
     from annotator.config import load_job
-    from annotator.registry import get_plugin_manager
+    from annotator.registry import load_registry
     from annotator.runner import run_job
 
-    pm = get_plugin_manager(extra_plugins=[MagnitudesTestPlugin()])
+    pm = load_registry(extra_plugins=[MagnitudesTestPlugin()])
     out = outputs.base / "out_mags"
     job = load_job(None, inputs=[str(outputs.catalogue)], output_dir=str(out), chunk_rows=2_500)
     run_job(job, pm=pm)

@@ -202,7 +202,7 @@ def test_table_format_is_bounded_and_says_so(outputs, capsys):
     assert out[2].split() == ["1000000", "NULL"]
     assert "first 5 rows shown" in out[-1]
     assert run_cli("query", outputs.main, "SELECT 1 AS one") == 0
-    assert capsys.readouterr().out.splitlines()[-1] == "(1 row)"
+    assert capsys.readouterr().out.splitlines()[-1] == "result: 1 row"
 
 
 @pytest.mark.parametrize("suffix", [".parquet", ".csv", ".json"])
