@@ -7,7 +7,9 @@ A job file::
 
     [input]
     paths = ["catalogue.parquet", "more/"]   # files or folders, relative to this file
-    format = "auto"                          # auto | parquet | csv
+    format = "auto"                          # auto | parquet | csv | fits
+    hdu = 1                                  # FITS only: HDU number or EXTNAME (default:
+                                             # the first binary table)
     delimiter = ","                          # CSV only
     column_types = { objid = "int64" }       # CSV only: override the inferred type
 
@@ -44,9 +46,9 @@ else:  # pragma: no cover
 from .errors import ConfigError
 
 CORE_SECTIONS = ("input", "output", "cosmology", "columns", "annotators")
-INPUT_KEYS = ("paths", "format", "delimiter", "column_types")
+INPUT_KEYS = ("paths", "format", "delimiter", "column_types", "hdu")
 OUTPUT_KEYS = ("dir", "chunk_rows", "compression", "overwrite")
-FORMATS = ("auto", "parquet", "csv")
+FORMATS = ("auto", "parquet", "csv", "fits")
 COMPRESSIONS = ("zstd", "snappy", "gzip", "lz4", "none")
 ARROW_TYPE_NAMES = ("int8", "int16", "int32", "int64", "float32", "float64", "bool", "string")
 DEFAULT_CHUNK_ROWS = 250_000
@@ -62,6 +64,8 @@ class Job:
     :ivar input_format: ``auto`` (by extension), ``parquet`` or ``csv``.
     :ivar delimiter: CSV field delimiter.
     :ivar column_types: CSV column type overrides, ``{column: arrow type name}``.
+    :ivar hdu: FITS only: the table HDU, by number (0 = primary) or EXTNAME; ``None`` = the
+        first binary table.
     :ivar chunk_rows: rows per batch and per part file.
     :ivar compression: Parquet codec of the output.
     :ivar overwrite: replace a non-empty output folder.
@@ -81,6 +85,7 @@ class Job:
     input_format: str = "auto"
     delimiter: str = ","
     column_types: dict[str, str] = field(default_factory=dict)
+    hdu: int | str | None = None
     chunk_rows: int = DEFAULT_CHUNK_ROWS
     compression: str = "zstd"
     overwrite: bool = False
@@ -101,6 +106,7 @@ class Job:
             "input_format": self.input_format,
             "delimiter": self.delimiter,
             "column_types": dict(self.column_types),
+            "hdu": self.hdu,
             "chunk_rows": self.chunk_rows,
             "compression": self.compression,
             "cosmology": self.cosmology,
@@ -195,6 +201,11 @@ def job_from_mapping(
             raise ConfigError(
                 f"[input].column_types.{col}: {typ!r} is not one of {', '.join(ARROW_TYPE_NAMES)}"
             )
+    hdu = inp.get("hdu")
+    if hdu is not None and (isinstance(hdu, bool) or not isinstance(hdu, (int, str))
+                            or (isinstance(hdu, int) and hdu < 0) or hdu == ""):
+        raise ConfigError(f"[input].hdu: expected an HDU number (0 or more) or an EXTNAME, "
+                          f"got {hdu!r}")
 
     if output_dir is not None:
         out_dir = Path(output_dir).expanduser().resolve()
@@ -250,6 +261,7 @@ def job_from_mapping(
         input_format=fmt,
         delimiter=delimiter,
         column_types=dict(column_types),
+        hdu=hdu,
         chunk_rows=rows,
         compression=compression,
         overwrite=ow,

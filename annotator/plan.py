@@ -111,7 +111,8 @@ def build_plan(job: Job, pm=None) -> Plan:
 
     # -- inputs and cosmology --------------------------------------------------------
     sources = expand_inputs(job.inputs, job.input_format)
-    readers = [open_reader(s, delimiter=job.delimiter, column_types=job.column_types)
+    readers = [open_reader(s, delimiter=job.delimiter, column_types=job.column_types,
+                           hdu=job.hdu)
                for s in sources]
     schema = readers[0].schema
     for reader in readers[1:]:

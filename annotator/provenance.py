@@ -66,13 +66,21 @@ def votable_header(schema: pa.Schema, specs: dict, *, table_name: str, descripti
         if arraysize:
             attrs["arraysize"] = arraysize
         spec = specs.get(f.name)
+        meta = f.metadata or {}
         if spec is not None:
             if spec.unit:
                 attrs["unit"] = spec.unit
             if spec.ucd:
                 attrs["ucd"] = spec.ucd
+        elif meta.get(b"unit"):  # an input column's own unit (e.g. FITS TUNITn)
+            attrs["unit"] = meta[b"unit"].decode("utf-8", "replace")
         field_el = ET.SubElement(table, "FIELD", attrs)
-        desc = spec.description if spec is not None else "Column of the input catalogue."
+        if spec is not None:
+            desc = spec.description
+        elif meta.get(b"description"):
+            desc = meta[b"description"].decode("utf-8", "replace")
+        else:
+            desc = "Column of the input catalogue."
         ET.SubElement(field_el, "DESCRIPTION").text = desc
     xml = ET.tostring(root, encoding="unicode")
     return '<?xml version="1.0" encoding="utf-8"?>\n' + xml.replace(' xmlns:ns0', ' xmlns')

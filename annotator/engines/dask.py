@@ -17,6 +17,9 @@ a run started locally can be finished on a cluster and the other way round.
   :meth:`ParquetReader.chunks` the local engine uses (``start_chunk=k``, first chunk taken),
   reading from the row group those rows start in (so row groups no larger than a chunk cost
   nothing extra). The driver reads nothing but footers.
+* **FITS** binary tables are read on the workers the same way (:class:`FitsChunkTask`): chunk
+  ``k`` is a byte range of the table's data (rows ``[k * chunk_rows, (k + 1) * chunk_rows)``
+  of ``NAXIS1`` bytes each), so a worker reads only its rows; the driver reads only headers.
 * **CSV** sources cannot be cut at row ``k * chunk_rows`` without parsing everything before it:
   which lines are set aside (and so where chunk ``k`` begins) is only known after parsing.
   The driver therefore streams a CSV through the same :class:`CsvReader` (one thread, ahead of
@@ -141,6 +144,40 @@ def read_parquet_chunk(source: Source, index: int, chunk_rows: int,
 
 
 @dataclass(frozen=True)
+class FitsChunkTask:
+    """Chunk ``index`` of a FITS binary table: read by the worker, as rows of the file."""
+
+    source: Source
+    index: int
+    chunk_rows: int
+    target: pa.Schema
+    hdu: int | str | None = None
+
+    def read(self) -> Chunk:
+        if not Path(self.source.path).is_file():
+            raise InputError(f"input {self.source.path}: not visible on host "
+                             f"{socket.gethostname()} (the Dask engine needs the inputs on a "
+                             f"filesystem every worker sees)")
+        chunks = open_reader(self.source, hdu=self.hdu).chunks(
+            self.chunk_rows, start_chunk=self.index, target=self.target)
+        try:
+            chunk = next(chunks, None)
+        finally:
+            chunks.close()
+        if chunk is None or chunk.index != self.index:
+            raise InputError(f"input {self.source.path}: has no rows from row "
+                             f"{self.index * self.chunk_rows + 1} (chunk {self.index}); did "
+                             f"the file change after the run was planned?")
+        return chunk
+
+
+#: Work a worker reads itself (a descriptor), as opposed to a parsed :class:`Chunk`.
+READ_ON_WORKER = (ParquetChunkTask, FitsChunkTask)
+#: Formats whose chunks the workers read themselves.
+WORKER_READ_FORMATS = ("parquet", "fits")
+
+
+@dataclass(frozen=True)
 class SharedPipeline:
     """The job's pipeline as scattered to the workers, with the run it belongs to."""
 
@@ -168,7 +205,7 @@ def _prepared(shared: SharedPipeline) -> Pipeline:
         return pipeline
 
 
-def annotate_and_commit(shared: SharedPipeline, work: Chunk | ParquetChunkTask,
+def annotate_and_commit(shared: SharedPipeline, work: Chunk | ParquetChunkTask | FitsChunkTask,
                         output_dir: str, compression: str) -> dict:
     """The task body: read the chunk if only its descriptor came, then ``process_chunk``.
 
@@ -181,7 +218,7 @@ def annotate_and_commit(shared: SharedPipeline, work: Chunk | ParquetChunkTask,
     with _prepare_lock:
         _writing_to[output_dir] = _writing_to.get(output_dir, 0) + 1
     try:
-        chunk = work.read() if isinstance(work, ParquetChunkTask) else work
+        chunk = work.read() if isinstance(work, READ_ON_WORKER) else work
         record = process_chunk(_prepared(shared), chunk, out, compression)
     finally:
         with _prepare_lock:
@@ -272,9 +309,10 @@ def _parquet_chunk_count(source: Source, chunk_rows: int) -> int:
     return math.ceil(rows / chunk_rows)
 
 
-def pending_work(plan, done: dict[int, set[int]]) -> Iterator[Chunk | ParquetChunkTask]:
+def pending_work(plan, done: dict[int, set[int]]
+                 ) -> Iterator[Chunk | ParquetChunkTask | FitsChunkTask]:
     """Every chunk not yet committed, source by source, in order: descriptors for Parquet
-    (read on the workers), parsed chunks for CSV (read here)."""
+    and FITS (read on the workers), parsed chunks for CSV (read here)."""
     job = plan.job
     for source in plan.sources:
         skip = done.get(source.index, set())
@@ -283,7 +321,14 @@ def pending_work(plan, done: dict[int, set[int]]) -> Iterator[Chunk | ParquetChu
                 if k not in skip:
                     yield ParquetChunkTask(source, k, job.chunk_rows, plan.catalogue_schema)
             continue
-        reader = open_reader(source, delimiter=job.delimiter, column_types=job.column_types)
+        reader = open_reader(source, delimiter=job.delimiter, column_types=job.column_types,
+                             hdu=job.hdu)
+        if source.format == "fits":
+            for k in range(reader.chunk_count(job.chunk_rows)):
+                if k not in skip:
+                    yield FitsChunkTask(source, k, job.chunk_rows, plan.catalogue_schema,
+                                        job.hdu)
+            continue
         start = 0
         while start in skip:
             start += 1
@@ -293,7 +338,7 @@ def pending_work(plan, done: dict[int, set[int]]) -> Iterator[Chunk | ParquetChu
                 yield chunk
 
 
-def _work_ids(work: Chunk | ParquetChunkTask) -> tuple[int, int]:
+def _work_ids(work: Chunk | ParquetChunkTask | FitsChunkTask) -> tuple[int, int]:
     return work.source.index, work.index
 
 
@@ -358,14 +403,15 @@ def _probe(plan) -> pa.Table | None:
             if _parquet_chunk_count(source, PROBE_ROWS):
                 return read_parquet_chunk(source, 0, PROBE_ROWS, plan.catalogue_schema).table
             continue
-        reader = open_reader(source, delimiter=job.delimiter, column_types=job.column_types)
+        reader = open_reader(source, delimiter=job.delimiter, column_types=job.column_types,
+                             hdu=job.hdu)
         for chunk in reader.chunks(PROBE_ROWS, target=plan.catalogue_schema):
             return chunk.table
     return None
 
 
 def _check_workers(client, pipeline: Pipeline, plan, output_dir: Path) -> None:
-    inputs = [str(s.path) for s in plan.sources if s.format == "parquet"]
+    inputs = [str(s.path) for s in plan.sources if s.format in WORKER_READ_FORMATS]
     probe = _probe(plan)
     expected = pipeline.annotate(probe)[0] if probe is not None else None
     try:
@@ -478,7 +524,7 @@ def run_dask(plan, *, progress=None, resume: bool = False, scheduler: str | None
         threads = max(sum(client.nthreads().values()), 1)
         window = TASKS_PER_THREAD * threads
         work = pending_work(plan, done)
-        if any(s.format != "parquet" for s in plan.sources):
+        if any(s.format not in WORKER_READ_FORMATS for s in plan.sources):
             # parse CSV ahead while the driver waits (bounded: the driver's memory)
             work = _prefetch(work, depth=min(window, CSV_PREFETCH_CHUNKS))
         # as_completed() alone would track the futures on the default client's loop, which need not

@@ -3,7 +3,11 @@
 Every reader yields :class:`Chunk` objects in a deterministic sequence: chunk ``k`` of a source
 always holds the same rows, so a resumed run can skip exactly the chunks already committed.
 
-* Parquet: ``ParquetFile.iter_batches`` (bounded memory), re-cut to exactly ``chunk_rows``.
+The formats, by file name (:data:`FORMATS`; ``[input].format`` overrides):
+
+* Parquet (annotator/io/parquet.py): ``ParquetFile.iter_batches`` (bounded memory), re-cut to
+  exactly ``chunk_rows``, page checksums verified where present.
+* FITS binary tables (annotator/io/fits.py): rows ``[k * n, (k + 1) * n)`` read by byte range.
 * CSV and CSV.gz: the text is cut into blocks at line ends, each block parsed by
   ``pyarrow.csv``; rows with the wrong number of fields or text where a number belongs are set
   aside with their physical line number (header = line 1), the reason and the raw text.
@@ -23,12 +27,14 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.csv as pacsv
-import pyarrow.parquet as pq
 
 from ..errors import InputError
+from .fits import FITS_SUFFIXES
+from .parquet import PARQUET_SUFFIXES, ParquetReader
 
 CSV_SUFFIXES = (".csv", ".csv.gz", ".tsv", ".tsv.gz", ".txt", ".txt.gz")
-PARQUET_SUFFIXES = (".parquet", ".pq", ".parq")
+#: format -> the file-name endings that select it (``[input].format = "auto"``)
+FORMATS = {"parquet": PARQUET_SUFFIXES, "csv": CSV_SUFFIXES, "fits": FITS_SUFFIXES}
 CSV_BLOCK_BYTES = 8 << 20
 TYPE_BY_NAME = {
     "int8": pa.int8(),
@@ -48,7 +54,7 @@ class Source:
 
     index: int
     path: Path
-    format: str  # "parquet" or "csv"
+    format: str  # a key of FORMATS: "parquet", "csv" or "fits"
     size_bytes: int
 
 
@@ -70,15 +76,14 @@ def _format_of(path: Path, fmt: str) -> str | None:
     if fmt != "auto":
         return fmt
     name = path.name.lower()
-    if name.endswith(PARQUET_SUFFIXES):
-        return "parquet"
-    if name.endswith(CSV_SUFFIXES):
-        return "csv"
+    for kind, suffixes in FORMATS.items():
+        if name.endswith(suffixes):
+            return kind
     return None
 
 
 def expand_inputs(paths: list[Path], fmt: str = "auto") -> list[Source]:
-    """Files stay as given; folders give their Parquet (or CSV) files, sorted by path."""
+    """Files stay as given; folders give their Parquet, CSV or FITS files, sorted by path."""
     sources: list[Source] = []
     for path in paths:
         path = Path(path)
@@ -88,7 +93,7 @@ def expand_inputs(paths: list[Path], fmt: str = "auto") -> list[Source]:
                 if p.is_file() and not p.name.startswith((".", "_")) and _format_of(p, fmt)
             )
             if not files:
-                raise InputError(f"input folder {path}: holds no Parquet or CSV files")
+                raise InputError(f"input folder {path}: holds no Parquet, CSV or FITS files")
         elif path.is_file():
             files = [path]
         else:
@@ -98,83 +103,10 @@ def expand_inputs(paths: list[Path], fmt: str = "auto") -> list[Source]:
             if kind is None:
                 raise InputError(
                     f"input {f}: cannot tell the format from the name "
-                    f"(use .parquet, .csv or .csv.gz, or set [input].format)"
+                    f"(use .parquet, .csv, .csv.gz, .fits or .fits.gz, or set [input].format)"
                 )
             sources.append(Source(len(sources), f.resolve(), kind, f.stat().st_size))
     return sources
-
-
-class ParquetReader:
-    def __init__(self, source: Source):
-        self.source = source
-        try:
-            # pre_buffer=True (pyarrow's default) keeps every row group read so far in memory
-            # while iter_batches runs: memory would grow with the file (measured: ~20 MB per
-            # 250k-row chunk). Without it, memory stays flat.
-            self._file = pq.ParquetFile(source.path, pre_buffer=False)
-            self.schema = self._file.schema_arrow
-        except Exception as exc:
-            raise InputError(f"input {source.path}: not a readable Parquet file: {exc}") from exc
-
-    def estimate_rows(self) -> int:
-        return self._file.metadata.num_rows
-
-    def chunks(self, chunk_rows: int, start_chunk: int = 0, target: pa.Schema | None = None
-               ) -> Iterator[Chunk]:
-        meta = self._file.metadata
-        start_row = start_chunk * chunk_rows
-        first_group, skip, seen = 0, 0, 0
-        for g in range(meta.num_row_groups):
-            n = meta.row_group(g).num_rows
-            if seen + n > start_row:
-                first_group, skip = g, start_row - seen
-                break
-            seen += n
-        else:
-            return
-        groups = list(range(first_group, meta.num_row_groups))
-        pending: list[pa.RecordBatch] = []
-        pending_rows = 0
-        index = start_chunk
-        try:
-            batches = self._file.iter_batches(batch_size=chunk_rows, row_groups=groups)
-            for batch in batches:
-                if skip:
-                    if batch.num_rows <= skip:
-                        skip -= batch.num_rows
-                        continue
-                    batch = batch.slice(skip)
-                    skip = 0
-                pending.append(batch)
-                pending_rows += batch.num_rows
-                while pending_rows >= chunk_rows:
-                    table = pa.Table.from_batches(pending)
-                    yield Chunk(self.source, index, self._conform(table.slice(0, chunk_rows), target))
-                    index += 1
-                    rest = table.slice(chunk_rows)
-                    pending = rest.to_batches() if rest.num_rows else []
-                    pending_rows = rest.num_rows
-        except InputError:
-            raise
-        except Exception as exc:
-            raise InputError(
-                f"input {self.source.path}: unreadable Parquet data near row "
-                f"{index * chunk_rows}: {exc}"
-            ) from exc
-        if pending_rows:
-            yield Chunk(self.source, index, self._conform(pa.Table.from_batches(pending), target))
-
-    def _conform(self, table: pa.Table, target: pa.Schema | None) -> pa.Table:
-        table = table.combine_chunks()
-        if target is None or table.schema.equals(target, check_metadata=False):
-            return table
-        try:
-            return table.select(target.names).cast(target)
-        except Exception as exc:
-            raise InputError(
-                f"input {self.source.path}: columns do not match the first input's types "
-                f"({exc})"
-            ) from exc
 
 
 def _open_text(path: Path):
@@ -465,10 +397,16 @@ def _unparseable(strings: pd.Series, typ: pa.DataType) -> np.ndarray:
     return out
 
 
-def open_reader(source: Source, *, delimiter: str = ",", column_types: dict | None = None):
+def open_reader(source: Source, *, delimiter: str = ",", column_types: dict | None = None,
+                hdu: int | str | None = None):
     """The reader for a source's format."""
     if source.format == "parquet":
         return ParquetReader(source)  # Parquet carries its own types
     if source.format == "csv":
         return CsvReader(source, delimiter=delimiter, column_types=column_types)
-    raise InputError(f"input {source.path}: unknown format {source.format!r} (parquet or csv)")
+    if source.format == "fits":
+        from .fits import FitsReader
+
+        return FitsReader(source, hdu=hdu)  # FITS carries its own types
+    raise InputError(f"input {source.path}: unknown format {source.format!r} "
+                     f"({', '.join(FORMATS)})")

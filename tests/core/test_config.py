@@ -22,7 +22,7 @@ def test_defaults():
 
 @pytest.mark.parametrize("data,needle", [
     ({"input": {"paths": ["a"], "fromat": "csv"}}, "[input].fromat: unknown key"),
-    ({"input": {"paths": ["a"], "format": "fits"}}, "[input].format: 'fits' is not one of"),
+    ({"input": {"paths": ["a"], "format": "votable"}}, "[input].format: 'votable' is not one of"),
     ({"input": {"paths": 3}}, "[input].paths: expected a list"),
     ({"input": {"paths": []}}, "[input].paths: no input given"),
     ({"input": {"paths": ["a"], "delimiter": "||"}}, "[input].delimiter"),
