@@ -207,13 +207,22 @@ def build_manifest(plan, records: list[dict], *, started_at: str, finished_at: s
 
 
 def write_json_atomic(obj: dict, path: Path) -> None:
-    tmp = path.with_name(path.name + ".tmp")
-    with open(tmp, "w", encoding="utf-8") as fh:
-        json.dump(obj, fh, indent=2, sort_keys=False, default=str)
-        fh.write("\n")
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
+    from .io.writer import DiskFullError, is_disk_full, temporary_name
+
+    path = Path(path)
+    tmp = temporary_name(path)
+    try:
+        with open(tmp, "w", encoding="utf-8") as fh:
+            json.dump(obj, fh, indent=2, sort_keys=False, default=str)
+            fh.write("\n")
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException as exc:
+        tmp.unlink(missing_ok=True)
+        if is_disk_full(exc):
+            raise DiskFullError(path.parent, None, path.name) from exc
+        raise
 
 
 def read_manifest(output_dir: Path) -> dict:

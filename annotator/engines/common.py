@@ -5,18 +5,38 @@ from __future__ import annotations
 import json
 import shutil
 import time
+from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
 from ..errors import OutputError
 from ..io.checkpoint import JOB_FILE, STATE_DIR, CheckpointLog
+from ..io.lock import LOCK_FILE, output_lock
 from ..io.readers import Chunk
-from ..io.writer import (REJECTED_DIR, part_name, rejected_table, remove_stale_temporaries,
-                         write_parquet_atomic)
+from ..io.writer import (REJECTED_DIR, DiskFullError, is_disk_full, part_name, rejected_table,
+                         remove_stale_temporaries, write_parquet_atomic)
 from ..pipeline import Pipeline
 from ..provenance import MANIFEST, build_manifest, now_iso, write_json_atomic
 
-OWNED = (MANIFEST, STATE_DIR, REJECTED_DIR)
+OWNED = (MANIFEST, STATE_DIR, REJECTED_DIR, LOCK_FILE)
+
+
+@contextmanager
+def sole_writer(output_dir: Path):
+    """For the whole of a run: hold the output folder's writer lock (annotator/io/lock.py), and
+    turn "no space left on device" from anywhere in the run into one :class:`DiskFullError`
+    naming the folder (the writers have already removed their temporaries)."""
+    out = Path(output_dir)
+    with output_lock(out):
+        try:
+            yield
+        except DiskFullError:
+            raise
+        except OSError as exc:
+            if is_disk_full(exc):
+                remove_stale_temporaries(out)  # ours: the lock says no one else writes here
+                raise DiskFullError(out) from exc
+            raise
 
 
 @dataclass
@@ -81,7 +101,7 @@ def prepare_output(plan, *, resume: bool) -> CheckpointLog:
         raise OutputError(f"output {out}: exists and is not a folder")
     log = CheckpointLog(out)
     fingerprint = plan.job.fingerprint()
-    existing = list(out.iterdir()) if out.is_dir() else []
+    existing = [p for p in out.iterdir() if p.name != LOCK_FILE] if out.is_dir() else []
     if resume and not log.exists() and [p.name for p in existing] == [STATE_DIR]:
         # A run stopped before its checkpoint existed committed no part: nothing to keep,
         # so resuming it is starting it afresh.

@@ -65,7 +65,7 @@ import threading
 import time
 import uuid
 from collections.abc import Iterator
-from contextlib import contextmanager
+from contextlib import ExitStack, contextmanager
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -78,8 +78,8 @@ from ..errors import ConfigError, InputError, OutputError, UserError
 from ..io.readers import Chunk, ParquetReader, Source, open_reader
 from ..pipeline import Pipeline
 from ..provenance import file_sha256, now_iso, part_metadata
-from .common import (CommitLog, committed_chunks, finish, prepare_output,
-                     process_chunk)
+from .common import (CommitLog, committed_chunks, finish, prepare_output, process_chunk,
+                     sole_writer)
 from .local import _prefetch
 
 #: How long to wait for workers to join an existing cluster (batch queues can be slow).
@@ -507,8 +507,9 @@ def run_dask(plan, *, progress=None, resume: bool = False, scheduler: str | None
     if job.output_dir is None:  # said before a cluster is started or reached
         raise OutputError("no output folder: give --out DIR or [output].dir")
     out = Path(job.output_dir).resolve()
-    with connect(scheduler, workers) as client:
+    with connect(scheduler, workers) as client, ExitStack() as hold:
         _wait_for_earlier_tasks(client, out)
+        hold.enter_context(sole_writer(out))  # for the rest of the run
         log = prepare_output(plan, resume=resume)
         metadata = part_metadata(plan)
         pipeline = Pipeline.from_plan(plan, metadata)
@@ -588,6 +589,6 @@ def run_dask(plan, *, progress=None, resume: bool = False, scheduler: str | None
             raise UserError("run cancelled")
         checksums = {path: future.result() for path, future in sums.items()}
         del shared
-    return finish(plan, _RecordsInOrder(log), started_at=started_at,
-                  elapsed_s=time.perf_counter() - t0, engine="dask", checksums=checksums,
-                  metadata=metadata)
+        return finish(plan, _RecordsInOrder(log), started_at=started_at,
+                      elapsed_s=time.perf_counter() - t0, engine="dask", checksums=checksums,
+                      metadata=metadata)

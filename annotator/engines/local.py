@@ -16,7 +16,8 @@ from pathlib import Path
 from ..io.readers import open_reader
 from ..pipeline import Pipeline
 from ..provenance import file_sha256, now_iso, part_metadata
-from .common import CommitLog, committed_chunks, finish, prepare_output, write_chunk
+from .common import (CommitLog, committed_chunks, finish, prepare_output, sole_writer,
+                     write_chunk)
 
 _DONE = object()
 
@@ -82,43 +83,45 @@ def run_local(plan, *, progress=None, resume: bool = False, cancel=None) -> dict
     job = plan.job
     out = Path(job.output_dir)
     started_at, t0 = now_iso(), time.perf_counter()
-    log = prepare_output(plan, resume=resume)
-    metadata = part_metadata(plan)
-    pipeline = Pipeline.from_plan(plan, metadata)
-    pipeline.prepare()
-    records = log.records()
-    done = committed_chunks(records)
-    commits = CommitLog(log, records, plan.estimated_rows, progress)
+    with sole_writer(out):
+        log = prepare_output(plan, resume=resume)
+        metadata = part_metadata(plan)
+        pipeline = Pipeline.from_plan(plan, metadata)
+        pipeline.prepare()
+        records = log.records()
+        done = committed_chunks(records)
+        commits = CommitLog(log, records, plan.estimated_rows, progress)
 
-    with ThreadPoolExecutor(max_workers=1, thread_name_prefix="annotator-checksum") as hasher, \
-            ThreadPoolExecutor(max_workers=1, thread_name_prefix="annotator-writer") as writer:
-        sums = {str(s.path): hasher.submit(file_sha256, s.path) for s in plan.sources}
-        in_flight: list[Future] = []
+        with ThreadPoolExecutor(max_workers=1, thread_name_prefix="annotator-checksum") \
+                as hasher, \
+                ThreadPoolExecutor(max_workers=1, thread_name_prefix="annotator-writer") as writer:
+            sums = {str(s.path): hasher.submit(file_sha256, s.path) for s in plan.sources}
+            in_flight: list[Future] = []
 
-        def drain(limit: int) -> None:
-            while len(in_flight) > limit:
-                commits.commit(in_flight.pop(0).result())
+            def drain(limit: int) -> None:
+                while len(in_flight) > limit:
+                    commits.commit(in_flight.pop(0).result())
 
-        try:
-            for chunk in _prefetch(iter_pending_chunks(plan, done), depth=2):
-                annotated, counts, flagged = pipeline.annotate(chunk.table)
-                in_flight.append(writer.submit(write_chunk, out, job.compression, metadata,
-                                               chunk, annotated, counts, flagged))
-                drain(1)
-                if cancel is not None and cancel.is_set():
-                    break
-            drain(0)
-        except BaseException:
-            for f in in_flight:  # commit what is already annotated, then stop
-                try:
-                    log.append(f.result())
-                except Exception:
-                    pass
-            raise
-        if cancel is not None and cancel.is_set():
-            from ..errors import UserError
+            try:
+                for chunk in _prefetch(iter_pending_chunks(plan, done), depth=2):
+                    annotated, counts, flagged = pipeline.annotate(chunk.table)
+                    in_flight.append(writer.submit(write_chunk, out, job.compression, metadata,
+                                                   chunk, annotated, counts, flagged))
+                    drain(1)
+                    if cancel is not None and cancel.is_set():
+                        break
+                drain(0)
+            except BaseException:
+                for f in in_flight:  # commit what is already annotated, then stop
+                    try:
+                        log.append(f.result())
+                    except Exception:
+                        pass
+                raise
+            if cancel is not None and cancel.is_set():
+                from ..errors import UserError
 
-            raise UserError("run cancelled")
-        checksums = {k: f.result() for k, f in sums.items()}
-    return finish(plan, log, started_at=started_at, elapsed_s=time.perf_counter() - t0,
-                  engine="local", checksums=checksums, metadata=metadata)
+                raise UserError("run cancelled")
+            checksums = {k: f.result() for k, f in sums.items()}
+        return finish(plan, log, started_at=started_at, elapsed_s=time.perf_counter() - t0,
+                      engine="local", checksums=checksums, metadata=metadata)

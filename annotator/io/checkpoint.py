@@ -11,6 +11,8 @@ import json
 import os
 from pathlib import Path
 
+from .writer import DiskFullError, is_disk_full, temporary_name
+
 STATE_DIR = "_state"
 CHECKPOINT_FILE = "checkpoint.jsonl"
 JOB_FILE = "job.json"
@@ -43,16 +45,37 @@ class CheckpointLog:
         self.dir.mkdir(parents=True, exist_ok=True)
         # Drop a torn tail so appends start on a clean line.
         good = self.records()
-        tmp = self.path.with_suffix(".tmp")
-        with tmp.open("w", encoding="utf-8") as fh:
-            for rec in good:
-                fh.write(json.dumps(rec, sort_keys=True) + "\n")
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, self.path)
+        tmp = temporary_name(self.path)
+        try:
+            with tmp.open("w", encoding="utf-8") as fh:
+                for rec in good:
+                    fh.write(json.dumps(rec, sort_keys=True) + "\n")
+                fh.flush()
+                os.fsync(fh.fileno())
+            os.replace(tmp, self.path)
+        except BaseException as exc:
+            tmp.unlink(missing_ok=True)
+            if is_disk_full(exc):
+                raise DiskFullError(self.dir.parent, None, CHECKPOINT_FILE) from exc
+            raise
 
     def append(self, record: dict) -> None:
-        with self.path.open("a", encoding="utf-8") as fh:
-            fh.write(json.dumps(record, sort_keys=True) + "\n")
-            fh.flush()
-            os.fsync(fh.fileno())
+        line = (json.dumps(record, sort_keys=True) + "\n").encode("utf-8")
+        fd = os.open(self.path, os.O_WRONLY | os.O_APPEND | os.O_CREAT, 0o644)
+        try:
+            at = os.lseek(fd, 0, os.SEEK_END)
+            try:
+                view = memoryview(line)
+                while view:
+                    view = view[os.write(fd, view):]
+                os.fsync(fd)
+            except OSError as exc:
+                try:  # no torn line: the part is simply written again on resume
+                    os.ftruncate(fd, at)
+                except OSError:
+                    pass
+                if is_disk_full(exc):
+                    raise DiskFullError(self.dir.parent, len(line), CHECKPOINT_FILE) from exc
+                raise
+        finally:
+            os.close(fd)

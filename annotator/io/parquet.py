@@ -4,10 +4,11 @@
   ``chunk_rows`` rows, so chunk ``k`` always holds rows ``[k * n, (k + 1) * n)``.
 * **Page checksums** (the optional CRC-32 of each page, Apache Parquet format, ``PageHeader.crc``)
   are verified where the writer stored them (``page_checksum_verification``). A row group whose
-  pages fail the check, or cannot be decoded at all, is never passed on: the rows of it not
-  already read are *set aside*, one rejected record per row (``row`` = 1-based row of the file)
-  with the reason, and reading goes on with the next row group. A file written without page
-  checksums cannot be checked this way (annotator's own outputs always carry them).
+  pages fail the check, or cannot be decoded at all, refuses the file: one line naming the file
+  and the rows of that row group (1-based), so no value of a damaged page is ever written.
+  The run stops there (exit 2); parts already committed stay, and ``--resume`` carries on once
+  the file is replaced by a good copy. A file written without page checksums cannot be checked
+  this way (annotator's own outputs always carry them).
 * A file whose schema repeats a column name is refused, naming the file and the column.
 """
 
@@ -44,9 +45,8 @@ class ParquetReader:
     def estimate_rows(self) -> int:
         return self._file.metadata.num_rows
 
-    # -- pieces of rows, in order: accepted batches and set-aside ranges -------------
-    def _pieces(self, start_row: int, batch_rows: int) -> Iterator[tuple]:
-        """``("rows", batch)`` and ``("bad", first_row, count, reason)`` from ``start_row``."""
+    def _batches(self, start_row: int, batch_rows: int) -> Iterator[pa.RecordBatch]:
+        """Batches of rows from ``start_row`` on, one row group at a time."""
         meta = self._file.metadata
         seen = 0
         for g in range(meta.num_row_groups):
@@ -54,28 +54,22 @@ class ParquetReader:
             if seen + n <= start_row:
                 seen += n
                 continue
-            skip = first_skip = max(start_row - seen, 0)
-            done = 0  # rows of this group already handled (skipped or passed on)
+            skip = max(start_row - seen, 0)
             try:
                 for batch in self._file.iter_batches(batch_size=batch_rows, row_groups=[g]):
                     if skip >= batch.num_rows:
                         skip -= batch.num_rows
-                        done += batch.num_rows
                         continue
                     if skip:
-                        done += skip
                         batch = batch.slice(skip)
                         skip = 0
-                    done += batch.num_rows
-                    yield ("rows", batch)
-            except Exception as exc:  # a checksum mismatch or undecodable page
-                first = seen + max(done, first_skip)
-                count = seen + n - first
-                if count > 0:
-                    why = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
-                    yield ("bad", first, count,
-                           f"corrupted Parquet data in row group {g} (rows {first + 1} to "
-                           f"{seen + n}): {why}")
+                    yield batch
+            except Exception as exc:  # a checksum mismatch or an undecodable page
+                why = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+                raise InputError(
+                    f"input {self.source.path}: unreadable Parquet data in rows {seen + 1} to "
+                    f"{seen + n} (row group {g}: {why}); the file is refused, replace it with a "
+                    f"good copy and rerun with --resume") from exc
             seen += n
 
     def chunks(self, chunk_rows: int, start_chunk: int = 0, target: pa.Schema | None = None
@@ -83,43 +77,22 @@ class ParquetReader:
         from .readers import Chunk
 
         index = start_chunk
-        batches: list[pa.RecordBatch] = []
-        rejected: list[dict] = []
+        pending: list[pa.RecordBatch] = []
         filled = 0
-        path = str(self.source.path)
-
-        def emit():
-            table = pa.Table.from_batches(batches, schema=self.schema) if batches \
-                else self.schema.empty_table()
-            return Chunk(self.source, index, self._conform(table, target), rejected)
-
-        for piece in self._pieces(start_chunk * chunk_rows, chunk_rows):
-            if piece[0] == "rows":
-                batch = piece[1]
-                while batch.num_rows:
-                    take = min(chunk_rows - filled, batch.num_rows)
-                    batches.append(batch.slice(0, take))
-                    batch = batch.slice(take)
-                    filled += take
-                    if filled == chunk_rows:
-                        yield emit()
-                        index += 1
-                        batches, rejected, filled = [], [], 0
-            else:
-                _, first, count, reason = piece
-                while count:
-                    take = min(chunk_rows - filled, count)
-                    rejected.extend({"source": path, "row": r + 1, "reason": reason, "raw": ""}
-                                    for r in range(first, first + take))
-                    first += take
-                    count -= take
-                    filled += take
-                    if filled == chunk_rows:
-                        yield emit()
-                        index += 1
-                        batches, rejected, filled = [], [], 0
+        for batch in self._batches(start_chunk * chunk_rows, chunk_rows):
+            while batch.num_rows:
+                take = min(chunk_rows - filled, batch.num_rows)
+                pending.append(batch.slice(0, take))
+                batch = batch.slice(take)
+                filled += take
+                if filled == chunk_rows:
+                    table = pa.Table.from_batches(pending, schema=self.schema)
+                    yield Chunk(self.source, index, self._conform(table, target))
+                    index += 1
+                    pending, filled = [], 0
         if filled:
-            yield emit()
+            table = pa.Table.from_batches(pending, schema=self.schema)
+            yield Chunk(self.source, index, self._conform(table, target))
 
     def _conform(self, table: pa.Table, target: pa.Schema | None) -> pa.Table:
         table = table.combine_chunks()
