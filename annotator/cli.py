@@ -1,7 +1,11 @@
 """The ``annotator`` command: thin; it parses, calls, prints.
 
 User errors (:class:`annotator.errors.UserError`) print one line ``annotator: error: ...`` and
-exit with status 2; no traceback. ``ANNOTATOR_DEBUG=1`` shows tracebacks.
+exit with status 2; no traceback. An operating-system error that names a file (permission
+denied, ...) is one such line too. Anything else is a bug of annotator or of a plugin: it prints
+one line ``annotator: internal error: <exception>: <message> (traceback written to FILE)`` and
+exits with status 2; the full traceback goes to a file ``annotator-traceback-*.txt`` in the
+temporary folder (``$TMPDIR``). ``ANNOTATOR_DEBUG=1`` lets every traceback through instead.
 """
 
 from __future__ import annotations
@@ -64,6 +68,39 @@ def main(argv: list[str] | None = None) -> int:
         return 130
     except BrokenPipeError:
         return 0
+    except OSError as exc:
+        if os.environ.get("ANNOTATOR_DEBUG"):
+            raise
+        if exc.filename is None:
+            return _internal_error(exc)
+        print(f"annotator: error: {exc.filename}: {exc.strerror or exc}", file=sys.stderr)
+        return 2
+    except Exception as exc:
+        if os.environ.get("ANNOTATOR_DEBUG"):
+            raise
+        return _internal_error(exc)
+
+
+def _internal_error(exc: BaseException) -> int:
+    """One line for an unexpected exception; its traceback goes to a file."""
+    import tempfile
+    import time
+    import traceback
+
+    where = "not written"
+    try:
+        stamp = time.strftime("%Y%m%dT%H%M%S")
+        fd, path = tempfile.mkstemp(prefix=f"annotator-traceback-{stamp}-", suffix=".txt")
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            fh.write(f"annotator {__version__}, command line: {' '.join(sys.argv)}\n")
+            traceback.print_exception(type(exc), exc, exc.__traceback__, file=fh)
+        where = f"written to {path}"
+    except OSError:
+        pass
+    message = " ".join(str(exc).split()) or "(no message)"
+    print(f"annotator: internal error: {type(exc).__name__}: {message[:300]} (a bug; traceback "
+          f"{where}; ANNOTATOR_DEBUG=1 shows it here)", file=sys.stderr)
+    return 2
 
 
 if __name__ == "__main__":  # pragma: no cover
