@@ -42,6 +42,7 @@ from __future__ import annotations
 import gzip
 import math
 import re
+import warnings
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -272,7 +273,10 @@ class FitsReader:
                              f"decompress it first (e.g. funpack) and give the .fits file")
         fits = _astropy_fits()
         try:
-            with fits.open(path, memmap=False, lazy_load_hdus=True) as hdul:
+            with warnings.catch_warnings(), \
+                    fits.open(path, memmap=False, lazy_load_hdus=True) as hdul:
+                # astropy warns of e.g. truncation; the reader says it itself, on one line
+                warnings.simplefilter("ignore")
                 index = _choose_hdu(path, hdul, hdu)
                 header = hdul[index].header.copy()
                 info = hdul.fileinfo(index)
