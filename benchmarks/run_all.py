@@ -15,6 +15,7 @@ HERE = Path(__file__).resolve().parent
 SCRIPTS = [
     ("bench_cosmology.py", []),
     ("bench_pipeline.py", []),
+    ("bench_fits.py", []),
     ("bench_kcorrection.py", []),
     ("bench_uncertainty.py", []),
     ("bench_sql.py", []),
