@@ -38,6 +38,8 @@ class Annotator:
     * ``name``: unique identifier, the key under ``[annotators]`` in a job file.
     * ``version``: the annotator's own version, recorded in every output.
     * ``summary``: one line for ``annotator plugins``.
+    * ``documentation``: where its options and job-dependent columns are described (a page
+      or an address), shown by ``annotator plugins``.
     * ``sections``: top-level job-file tables this annotator owns (e.g. ``("bands",)``).
     * ``column_settings``: keys of ``[columns]`` that are settings, not column mappings.
     * ``input_hints``: for a logical input, catalogue column names to try when unmapped.
@@ -61,6 +63,7 @@ class Annotator:
     name: ClassVar[str] = ""
     version: ClassVar[str] = "0"
     summary: ClassVar[str] = ""
+    documentation: ClassVar[str] = ""
     sections: ClassVar[tuple[str, ...]] = ()
     column_settings: ClassVar[tuple[str, ...]] = ()
     input_hints: ClassVar[Mapping[str, Sequence[str]]] = {}
@@ -125,6 +128,16 @@ class Setup:
     base_dir: Path
     explicitly_enabled: bool = False
     allowed_roots: tuple = ()
+    why_not: str = ""
+
+    def does_not_apply(self, why: str) -> None:
+        """Say why the annotator does not apply to this job; ``configure`` returns the result.
+
+        ``return setup.does_not_apply("no [bands] table in the job")`` returns ``None``; every
+        run then prints ``annotator: <name> not applied: <why>``.
+        """
+        self.why_not = why
+        return None
 
     def error(self, key: str, why: str) -> ConfigError:
         """A ConfigError naming ``[annotators.<name>].key`` (or a section key as given)."""

@@ -229,6 +229,7 @@ def reachable_probability_split(z: np.ndarray, lower: np.ndarray, upper: np.ndar
 class Uncertainties(Annotator):
     name = "uncertainties"
     version = "1.0"
+    documentation = "docs/frames-and-uncertainties.md"
     summary = "Errors of distances, distance modulus and times propagated from the redshift " \
               "error; probability of being reachable."
     position = 50
@@ -269,7 +270,8 @@ class Uncertainties(Annotator):
             raise setup.error("truncate_at_zero", f"expected true or false, got {truncate!r}")
         errors = error_inputs(setup)
         if not errors:
-            return None
+            return setup.does_not_apply("no redshift error column (map [columns] redshift_error, "
+                                        "or redshift_error_lower and redshift_error_upper)")
         return cls(setup.cosmology, errors, truncate)
 
     def prepare(self):

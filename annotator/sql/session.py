@@ -262,8 +262,8 @@ def output_format(to: str | Path | None, fmt: str | None) -> str:
         raise ConfigError(f"--format: {fmt!r} is not one of {', '.join(FORMATS)}")
     if to is None:
         if fmt == "parquet":
-            raise ConfigError("--format parquet needs --to FILE (Parquet is not written to a "
-                              "terminal)")
+            raise ConfigError("--format parquet needs --to FILE.parquet (Parquet is written "
+                              "only to a file, never to standard output)")
         return fmt or "table"
     if fmt == "table":
         raise ConfigError("--format table is for the terminal; with --to FILE choose csv, "
@@ -432,9 +432,13 @@ class QuerySession:
             raise query_error(exc) from None
 
     def copy_to(self, sql: str, fmt: str, *, overwrite: bool = False) -> int:
-        """Write the result with DuckDB's COPY (no rows pass through Python); return the count.
+        """Write the result to ``write_to``; return the count.
 
-        The file appears complete or not at all (written beside it, then renamed).
+        Parquet is written by DuckDB's COPY (no rows pass through Python). CSV and JSON Lines
+        go through the very writers of ``--format csv|json`` on stdout (Arrow's CSV writer,
+        one batch at a time; JSON with NaN and infinities as null), so one format gives one
+        output whether it goes to a pipe or to a file. The file appears complete or not at
+        all (written beside it, then renamed).
         """
         if self.write_to is None or self._tmp_target is None:
             raise ConfigError("copy_to needs the session opened with write_to=FILE")
@@ -449,13 +453,36 @@ class QuerySession:
         tmp = self._tmp_target
         tmp.unlink(missing_ok=True)
         try:
-            rows = self.con.execute(f"COPY (\n{text}\n) TO {_literal(str(tmp))} "
-                                    f"({COPY_OPTIONS[fmt]})").fetchone()
-        except duckdb.Error as exc:
+            if fmt == "parquet":
+                rows = self.con.execute(f"COPY (\n{text}\n) TO {_literal(str(tmp))} "
+                                        f"({COPY_OPTIONS[fmt]})").fetchone()
+                rows = int(rows[0]) if rows else 0
+            else:
+                rows = self._write_streamed(text, fmt, tmp)
+        except (duckdb.Error, pa.ArrowException) as exc:
             tmp.unlink(missing_ok=True)
             raise query_error(exc) from None
+        except BaseException:
+            tmp.unlink(missing_ok=True)
+            raise
         os.replace(tmp, self.write_to)
-        return int(rows[0]) if rows else 0
+        return rows
+
+    def _write_streamed(self, text: str, fmt: str, tmp: Path) -> int:
+        from .output import write_csv, write_json_lines
+
+        reader = self.reader(text)
+        try:
+            if fmt == "csv":
+                with open(tmp, "wb") as fh:
+                    return write_csv(reader, fh)
+            with open(tmp, "w", encoding="utf-8", newline="\n") as fh:
+                return write_json_lines(reader, fh)
+        finally:
+            try:
+                reader.close()
+            except Exception:  # already exhausted
+                pass
 
     # ------------------------------------------------------------------ lifetime
     def close(self) -> None:
