@@ -83,8 +83,9 @@ class Pipeline:
                                   f"{mask.shape}, expected ({n},)")
             bits[bit // 64][mask] |= np.uint64(1 << (bit % 64))
 
+        shared: dict = {}
         for step in self.steps:
-            batch = Batch(table, step.resolve, computed, flagger, step.name)
+            batch = Batch(table, step.resolve, computed, flagger, step.name, shared)
             try:
                 result = step.annotator.annotate(batch)
             except PluginError:
