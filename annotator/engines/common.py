@@ -11,7 +11,7 @@ from pathlib import Path
 
 from ..errors import OutputError
 from ..io.checkpoint import JOB_FILE, STATE_DIR, CheckpointLog
-from ..io.lock import LOCK_FILE, output_lock
+from ..io.lock import LOCK_FILE, lock_holder, output_lock
 from ..io.readers import Chunk
 from ..io.writer import (REJECTED_DIR, DiskFullError, is_disk_full, part_name, rejected_table,
                          remove_stale_temporaries, write_parquet_atomic)
@@ -85,6 +85,25 @@ def _is_owned(p: Path) -> bool:
     return p.name in OWNED or (p.name.startswith("part-") and ".parquet" in p.name)
 
 
+def interrupted_run(out: Path, fingerprint: dict) -> tuple[bool, int] | None:
+    """``(same_job, parts_committed)`` when ``out`` holds a run that never finished, else None.
+
+    An interrupted run has its job record in ``_state/`` but no manifest yet.
+    """
+    out = Path(out)
+    job_file = out / STATE_DIR / JOB_FILE
+    if not job_file.is_file() or (out / MANIFEST).exists():
+        return None
+    if lock_holder(out) is not None:  # running now, not interrupted: the lock refuses it
+        return None
+    try:
+        recorded = json.loads(job_file.read_text())
+    except (OSError, ValueError):
+        return None
+    same = recorded == json.loads(json.dumps(fingerprint, default=str))
+    return same, len(CheckpointLog(out).records())
+
+
 def prepare_output(plan, *, resume: bool) -> CheckpointLog:
     """Make the output folder ready; refuse to mix runs.
 
@@ -117,6 +136,11 @@ def prepare_output(plan, *, resume: bool) -> CheckpointLog:
             log.start()
             return log
         if not plan.job.overwrite:
+            stopped = interrupted_run(out, fingerprint)
+            if stopped is not None and stopped[0]:
+                raise OutputError(f"output {out}: holds an interrupted run of this job "
+                                  f"({stopped[1]} parts committed); continue it with --resume "
+                                  f"(or start again with --overwrite)")
             raise OutputError(f"output {out}: folder is not empty; use --overwrite to replace "
                               f"an earlier annotated output, or choose another --out")
         foreign = [p.name for p in existing if not _is_owned(p)]

@@ -16,12 +16,50 @@ with ``flock`` mounts honour it across hosts).
 from __future__ import annotations
 
 import os
+import time
 from contextlib import contextmanager
 from pathlib import Path
 
 from ..errors import OutputError
 
 LOCK_FILE = ".annotator.lock"
+
+
+def _take(fd: int, tries: int = 20) -> None:
+    """``LOCK_EX`` without waiting for a holder, but past a momentary probe by
+    :func:`lock_holder` (a few retries, 10 ms apart)."""
+    import fcntl
+
+    for attempt in range(tries):
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            return
+        except BlockingIOError:
+            if attempt == tries - 1:
+                raise
+            time.sleep(0.01)
+
+
+def lock_holder(folder: Path) -> str | None:
+    """The PID (as written by the holder) of a run holding ``folder``'s lock now, else None."""
+    import fcntl
+
+    path = Path(folder) / LOCK_FILE
+    try:
+        fd = os.open(path, os.O_RDONLY)
+    except OSError:
+        return None
+    try:
+        try:
+            fcntl.flock(fd, fcntl.LOCK_SH | fcntl.LOCK_NB)
+        except BlockingIOError:
+            return os.pread(fd, 64, 0).decode("ascii", "replace").strip() or "unknown"
+        except OSError:
+            return None
+        fcntl.flock(fd, fcntl.LOCK_UN)
+        return None
+    finally:
+        os.close(fd)
 
 
 @contextmanager
@@ -40,7 +78,7 @@ def output_lock(folder: Path):
                           f"({exc.strerror or exc})") from exc
     try:
         try:
-            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            _take(fd)
         except BlockingIOError:
             holder = os.pread(fd, 64, 0).decode("ascii", "replace").strip() or "unknown"
             raise OutputError(f"output {folder}: another annotator run (PID {holder}) is "

@@ -88,13 +88,15 @@ def test_outputs_carry_page_checksums(tmp_path, catalogue_parquet):
     assert main(["run", str(catalogue_parquet), "--out", str(out), "--quiet",
                  "--config", str(_uncompressed_job(tmp_path))]) == 0
     part = sorted(out.glob("part-*.parquet"))[0]
-    table = pq.read_table(part)
+    meta = pq.read_metadata(part)
+    names = meta.schema.to_arrow_schema().names
+    chunk = meta.row_group(0).column(names.index("comoving_distance_mpc"))
+    # the middle of the column chunk's bytes: inside its (single) data page, past the header
+    at = chunk.data_page_offset + chunk.total_compressed_size // 2
     data = bytearray(part.read_bytes())
-    value = table.column("comoving_distance_mpc").to_numpy()[100]
-    at = data.find(np.float64(value).tobytes())
-    assert at > 0
-    data[at + 1] ^= 0x01
+    data[at] ^= 0x01
     part.write_bytes(bytes(data))
+    assert pq.read_table(part).num_rows == meta.num_rows  # unverified: reads, values changed
     with pytest.raises(InputError, match="CRC"):
         list(ParquetReader(expand_inputs([part])[0]).chunks(10_000))
 
