@@ -184,6 +184,8 @@ class _Column:
     def decode(self, raw: np.ndarray) -> pa.Array:
         """Arrow values of this column from its stored values (one row per entry)."""
         rows = raw.shape[0]
+        if self.code in "ALX":  # byte-wise decoding wants the bytes contiguous
+            raw = np.ascontiguousarray(raw)
         if self.code == "A":
             # NUL ends a string, trailing blanks are not significant (sect. 7.3.3.1)
             if self.repeat and rows:
@@ -202,21 +204,22 @@ class _Column:
         if self.code == "X":
             bits = np.unpackbits(raw.reshape(rows, self.width), axis=1)[:, : self.repeat]
             return _nest(pa.array(bits.reshape(-1).astype(bool)), self.shape())
-        flat = raw.reshape(-1)
         if self.code == "L":
+            flat = raw.reshape(-1)
             values = pa.array(flat == ord("T"), mask=(flat == 0))
             return _nest(values, self.shape())
+        # one copy: strided big-endian field -> contiguous native values
+        flat = raw.astype(raw.dtype.newbyteorder("=")).reshape(-1)
         null = None
         if self.code in "BIJK" and self.null is not None:
             null = flat == int(self.null)
         if self.offset_type is not None:
             typ = np.dtype(self.offset_type)
-            native = flat.astype(flat.dtype.newbyteorder("="))
             if self.code == "B":
-                values = (native.astype(np.int16) - 128).astype(np.int8)
+                values = (flat.astype(np.int16) - 128).astype(np.int8)
             else:
                 # stored = physical - 2^(b-1): flipping the sign bit adds 2^(b-1) (mod 2^b)
-                values = native.view(typ) ^ typ.type(1 << (8 * typ.itemsize - 1))
+                values = flat.view(typ) ^ typ.type(1 << (8 * typ.itemsize - 1))
         elif self.scaled:
             values = flat.astype(np.float64)
             if self.scale not in (None, 1, 1.0):
@@ -224,10 +227,9 @@ class _Column:
             if self.zero not in (None, 0, 0.0):
                 values += float(self.zero)
         else:
-            values = flat.astype(flat.dtype.newbyteorder("="))
-        if self.code in "ED":
-            nan = np.isnan(values)
-            null = nan if nan.any() else None
+            values = flat
+        if self.code in "ED":  # NaN is null: pyarrow's from_pandas conversion does exactly it
+            return _nest(pa.array(values, from_pandas=True), self.shape())
         return _nest(pa.array(values, mask=null), self.shape())
 
 
@@ -340,7 +342,7 @@ class FitsReader:
                              f"{start + count} are announced (NAXIS2 = {self.num_rows}) but the "
                              f"file ends before them")
         raw = np.frombuffer(data, dtype=self._dtype, count=count)
-        arrays = [c.decode(np.ascontiguousarray(raw[c.name])) for c in self.columns]
+        arrays = [c.decode(raw[c.name]) for c in self.columns]
         return pa.Table.from_arrays(arrays, schema=self.schema)
 
     def chunks(self, chunk_rows: int, start_chunk: int = 0, target: pa.Schema | None = None
