@@ -63,11 +63,13 @@ _OFFSET_TYPES = {("B", -128): np.int8, ("I", 32768): np.uint16, ("J", 2147483648
 _TFORM = re.compile(r"^\s*(\d*)\s*([LXBIJKAEDCMPQ])(.*)$")
 
 
-def _astropy_fits():
+def _astropy_fits(path=None):
     try:
         from astropy.io import fits
     except ImportError as exc:
-        raise InputError("FITS input needs astropy: pip install 'annotator[fits]'") from exc
+        where = f"input {path}: " if path is not None else ""
+        raise InputError(f"{where}FITS input needs astropy: pip install 'annotator[fits]'") \
+            from exc
     return fits
 
 
@@ -273,7 +275,7 @@ class FitsReader:
         if path.name.lower().endswith(".fz"):
             raise InputError(f"input {path}: tile-compressed FITS (.fz) is not read; "
                              f"decompress it first (e.g. funpack) and give the .fits file")
-        fits = _astropy_fits()
+        fits = _astropy_fits(path)
         try:
             with warnings.catch_warnings(), \
                     fits.open(path, memmap=False, lazy_load_hdus=True) as hdul:

@@ -332,3 +332,14 @@ def test_hdu_from_the_job_file_and_a_wrong_one_is_one_line(tmp_path, capsys):
     err = capsys.readouterr().err.strip().splitlines()
     assert err[-1].startswith("annotator: error: [input].hdu: 5 is not an HDU of")
     assert "Traceback" not in "\n".join(err)
+
+
+def test_without_astropy_a_fits_input_is_one_line(typed_fits, monkeypatch, capsys, tmp_path):
+    import sys
+
+    monkeypatch.setitem(sys.modules, "astropy.io.fits", None)  # import now raises ImportError
+    monkeypatch.setitem(sys.modules, "astropy.io", None)
+    assert main(["run", str(typed_fits), "--out", str(tmp_path / "o"), "--quiet"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert err == [f"annotator: error: input {typed_fits}: FITS input needs astropy: "
+                   f"pip install 'annotator[fits]'"]
