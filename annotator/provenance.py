@@ -61,7 +61,13 @@ def votable_header(schema: pa.Schema, specs: dict, *, table_name: str, descripti
         ET.SubElement(table, "PARAM", {"name": name, "datatype": "char", "arraysize": "*",
                                        "value": value})
     for f in schema:
-        datatype, arraysize = _votable_datatype(f.type)
+        typ, dims = f.type, []
+        while pa.types.is_fixed_size_list(typ):  # a vector or array cell (e.g. FITS TDIMn)
+            dims.append(typ.list_size)
+            typ = typ.value_type
+        datatype, arraysize = _votable_datatype(typ)
+        if dims:  # VOTable arraysize: the first axis varies fastest ("3x2")
+            arraysize = "x".join(str(d) for d in reversed(dims))
         attrs = {"name": f.name, "datatype": datatype}
         if arraysize:
             attrs["arraysize"] = arraysize

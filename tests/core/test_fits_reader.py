@@ -276,6 +276,8 @@ def _catalogue_fits(path, n=2_500):
         fits.Column(name="z", format="D", array=z),
         fits.Column(name="mag_amber", format="E", unit="mag",
                     array=rng.normal(21, 1, n).astype(np.float32)),
+        fits.Column(name="mags", format="5E", unit="mag",
+                    array=rng.normal(21, 1, (n, 5)).astype(np.float32)),
     ]
     hdu = fits.BinTableHDU.from_columns(cols, name="CATALOGUE")
     fits.HDUList([fits.PrimaryHDU(), hdu]).writeto(path)
@@ -306,6 +308,8 @@ def test_run_on_fits_reconciles_carries_units_and_resumes(tmp_path):
              for f in ET.fromstring(content).iterfind(".//v:FIELD", ns)}
     assert units["ra"] == "deg" and units["mag_amber"] == "mag"
     assert units["comoving_distance_mpc"] == "Mpc"
+    fields = {f.get("name"): f for f in ET.fromstring(content).iterfind(".//v:FIELD", ns)}
+    assert fields["mags"].get("datatype") == "float" and fields["mags"].get("arraysize") == "5"
     # resume: drop the last part and its checkpoint record, as a crash after part 2 leaves it
     reference = table
     log = out / "_state" / "checkpoint.jsonl"
