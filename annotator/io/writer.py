@@ -130,8 +130,9 @@ def rejected_table(records: list[dict]) -> pa.Table:
 
 
 def remove_stale_temporaries(folder: Path) -> None:
-    """Temporary files left by a crash are never valid output."""
-    for sub in (folder, folder / REJECTED_DIR):
+    """Temporary files left by a crash are never valid output (called with the folder's
+    writer lock held, so none of them belongs to a live writer)."""
+    for sub in (folder, folder / REJECTED_DIR, folder / "_state"):
         if sub.is_dir():
             for p in sub.glob("*" + TMP_SUFFIX):
                 p.unlink(missing_ok=True)
