@@ -41,7 +41,9 @@ from .tables import (
     ucd_band_word,
 )
 
-__all__ = ["KCorrection", "register_annotators"]
+from .vmax import register_selections  # noqa: E402,F401  (the luminosity_function selection)
+
+__all__ = ["KCorrection", "register_annotators", "register_selections"]
 
 BAND_NAME = re.compile(r"^[a-z][a-z0-9_]*$")
 BAND_KEYS = ("magnitude", "error", "filter", "rest_filter", "kcorrection") + _vmax.BAND_KEYS

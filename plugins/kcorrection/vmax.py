@@ -34,12 +34,14 @@ search in ln(1 + z)) are not resolved.
 from __future__ import annotations
 
 import math
+import re
 from dataclasses import dataclass
 
 import numpy as np
 import pyarrow as pa
 
-from annotator import ColumnSpec
+from annotator import ColumnSpec, hookimpl
+from annotator.sql import Selection, SelectionParameter
 
 #: Grid points per object in the bracketing search; rows are processed in blocks.
 GRID_POINTS = 64
@@ -356,3 +358,51 @@ def _mag(setup, key: str, value) -> float:
             not math.isfinite(value) or not -50 < value < 60:
         raise setup.error(key, f"expected an apparent magnitude, got {value!r}")
     return float(value)
+
+
+# ------------------------------------------------------------------ luminosity function
+VMAX_COLUMN = re.compile(r"^vmax_([a-z][a-z0-9_]*)_mpc3$")
+DEFAULT_BIN_MAG = 0.25
+
+
+def luminosity_function_selection(bands: list[str]) -> Selection:
+    """The 1/V_max estimate of the luminosity function per bin of absolute magnitude (Schmidt
+    1968; Felten 1976, AJ 81, 376 for the binned form): per bin of width dM,
+    phi = sum 1/V_max / dM and its Poisson error sqrt(sum 1/V_max^2) / dM.
+
+    The band is a checked identifier (one of ``bands``), placed inside the quoted names.
+    """
+    def check(values: dict) -> str | None:
+        if not values["bin_mag"] > 0:
+            return f"bin_mag = {values['bin_mag']} must be above 0"
+        return None
+
+    m = '"absolute_magnitude_${band}_mag"'
+    v = '"vmax_${band}_mpc3"'
+    return Selection(
+        "luminosity_function",
+        "The 1/V_max luminosity function per bin of absolute magnitude, with Poisson errors "
+        "(one row per bin).",
+        f"SELECT (floor({m} / ${{bin_mag}}) + 0.5) * ${{bin_mag}} AS absolute_magnitude_mag,\n"
+        f"  count(*) AS objects,\n"
+        f"  sum(1.0 / {v}) / ${{bin_mag}} AS phi_per_mpc3_per_mag,\n"
+        f"  sqrt(sum(1.0 / ({v} * {v}))) / ${{bin_mag}} AS phi_error_per_mpc3_per_mag,\n"
+        f'  avg("v_over_vmax_${{band}}") AS mean_v_over_vmax\n'
+        f"FROM catalogue WHERE {v} > 0 AND {m} IS NOT NULL\n"
+        f"GROUP BY 1 ORDER BY 1",
+        (SelectionParameter("band", "band of the absolute magnitude and V_max", kind="choice",
+                            default=bands[0], choices=tuple(bands)),
+         SelectionParameter("bin_mag", "width of the absolute-magnitude bins in mag",
+                            default=DEFAULT_BIN_MAG)),
+        check=check,
+        note="phi counts each object in the flux-limited sample (V_max not null) once, "
+             "weighted by 1/V_max in Mpc^-3; the Poisson error assumes independent objects "
+             "(no cosmic variance). Bins are [k dM, (k + 1) dM), labelled by their centre.")
+
+
+@hookimpl
+def register_selections(manifest) -> list[Selection]:
+    added = {c.get("name") for c in manifest.get("columns_added", [])}
+    bands = sorted(mt.group(1) for name in added if name and (mt := VMAX_COLUMN.match(name))
+                   and f"absolute_magnitude_{mt.group(1)}_mag" in added)
+    return [luminosity_function_selection(bands)] if bands else []
