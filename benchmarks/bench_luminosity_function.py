@@ -12,9 +12,9 @@ of the vectorised z_max solve against a per-row scipy.optimize.brentq loop, in t
    (bracketing grid + Illinois, all rows at once) against brentq per row on the same
    function, timed on ``--sample`` rows; both in this process's CPU seconds (best of
    ``--repeat``), with the largest difference of their z_max.
-3. Extinction coefficients R_band = A_band / E(B-V) of the five Quillfield bands (CCM89,
-   R_V = 3.1) for the flat f_nu reference and for the three bundled SEDs at z = 0 and 1,
-   which is how much the fixed reference spectrum matters.
+3. Extinction coefficients R_band = A_band / E(B-V) of the five Quillfield bands (F99 and
+   CCM89, R_V = 3.1) for the flat f_nu reference and for the three bundled SEDs at z = 0 and
+   1, which is how much the fixed reference spectrum matters.
 
     python benchmarks/bench_luminosity_function.py              # full size
     python benchmarks/bench_luminosity_function.py --quick      # small, for development
@@ -202,20 +202,22 @@ def extinction_table() -> None:
                   base_dir=SAMPLES)
     seds = {n: load_sed(setup, f"seds/{n}.csv", "sed") for n in
             ("early", "intermediate", "starforming")}
-    print("extinction R_band = A_band / E(B-V), CCM89 R_V = 3.1, photon-weighted over the filter")
-    head = "  band      flat f_nu" + "".join(f" {n + ' z=' + str(zz):>16}" for n in seds
-                                             for zz in (0, 1))
-    print(head)
-    for band in BANDS:
-        filt = load_filter(setup, f"filters/{band}.csv", band)
-        vals = [band_coefficient(filt, 3.1)]
-        for sed in seds.values():
-            for zz in (0, 1):
-                shifted = Curve(sed.wave * (1 + zz), sed.value, sed.path, sed.key)
-                vals.append(band_coefficient(filt, 3.1, shifted))
-        spread = max(vals) - min(vals)
-        print(f"  {band:9} {vals[0]:9.4f}" + "".join(f" {v:16.4f}" for v in vals[1:])
-              + f"   spread {spread:.4f} ({100 * spread / vals[0]:.1f} %)")
+    for law in ("f99", "ccm89"):
+        print(f"extinction R_band = A_band / E(B-V), law {law}, R_V = 3.1, photon-weighted over "
+              f"the filter, for reference spectra: flat f_nu (used) and the bundled SEDs")
+        head = "  band      flat f_nu" + "".join(f" {n + ' z=' + str(zz):>16}" for n in seds
+                                                 for zz in (0, 1))
+        print(head)
+        for band in BANDS:
+            filt = load_filter(setup, f"filters/{band}.csv", band)
+            vals = [band_coefficient(filt, 3.1, law=law)]
+            for sed in seds.values():
+                for zz in (0, 1):
+                    shifted = Curve(sed.wave * (1 + zz), sed.value, sed.path, sed.key)
+                    vals.append(band_coefficient(filt, 3.1, shifted, law=law))
+            spread = max(vals) - min(vals)
+            print(f"  {band:9} {vals[0]:9.4f}" + "".join(f" {v:16.4f}" for v in vals[1:])
+                  + f"   spread {spread:.4f} ({100 * spread / vals[0]:.1f} %)")
 
 
 def main() -> int:

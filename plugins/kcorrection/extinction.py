@@ -1,10 +1,15 @@
 """Galactic extinction per band from a per-object E(B-V) (part of plugin ``kcorrection``).
 
-The law is Cardelli, Clayton & Mathis (1989, ApJ 345, 245; "CCM89"), eqs. 2-5:
-``A_lambda / A_V = a(x) + b(x) / R_V`` with x = 1/lambda in 1/micron, valid for
-0.3 <= x <= 10 (1000 A to 3.33 micron), and ``A_V = R_V E(B-V)`` (R_V = 3.1 for the diffuse
-interstellar medium, CCM89 sect. 1). It is evaluated here from the printed closed forms; no
-library is used.
+Two published laws, chosen by ``extinction_law`` (default ``"f99"``), both with R_V = 3.1 by
+default (the diffuse interstellar medium) and evaluated here from the papers' formulas (no
+library at run time; the tests compare with the dust_extinction package):
+
+* ``"f99"``: Fitzpatrick (1999, PASP 111, 63): FM90 ultraviolet form, spline in the optical
+  and infrared through the anchors of its Table 4;
+* ``"ccm89"``: Cardelli, Clayton & Mathis (1989, ApJ 345, 245), eqs. 2-5:
+  ``A_lambda / A_V = a(x) + b(x) / R_V`` and ``A_V = R_V E(B-V)``.
+
+Both are used for x = 1/lambda from 0.3 to 10 per micron (1000 A to 3.33 micron).
 
 A band's coefficient ``R_band = A_band / E(B-V)`` is the law averaged over the band with photon
 weighting, for a fixed reference spectrum S (f_lambda):
@@ -39,7 +44,8 @@ from .tables import Curve, Filter, ucd_band_word
 #: The logical input of the per-object E(B-V) and the catalogue names tried for it.
 EBV_INPUT = "ebv"
 EBV_HINTS = ("ebv", "e_bv", "ebmv", "e_b_v", "ebv_sfd", "ebv_map")
-LAWS = ("ccm89",)
+LAWS = ("f99", "ccm89")
+LAW_NAMES = {"f99": "Fitzpatrick (1999)", "ccm89": "CCM89"}
 DEFAULT_R_V = 3.1
 #: Range of CCM89 in x = 1/lambda (1/micron), eqs. 2-5.
 X_RANGE = (0.3, 10.0)
@@ -78,15 +84,59 @@ def ccm89_a_b(x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return a, b
 
 
-def a_lambda_over_ebv(wave_angstrom: np.ndarray, r_v: float = DEFAULT_R_V) -> np.ndarray:
-    """A_lambda / E(B-V) = R_V (a + b / R_V) of CCM89 at each wavelength (NaN outside)."""
-    a, b = ccm89_a_b(1e4 / np.asarray(wave_angstrom, dtype=np.float64))
+def _fm90_k(x: np.ndarray, r_v: float) -> np.ndarray:
+    """E(lambda - V) / E(B - V) in the ultraviolet: the Fitzpatrick & Massa (1990) form with the
+    R_V-dependent coefficients of Fitzpatrick (1999) sect. 3 (c2 = -0.824 + 4.717 / R_V,
+    c1 = 2.030 - 3.007 c2, x0 = 4.596, gamma = 0.99, c3 = 3.23, c4 = 0.41)."""
+    c2 = -0.824 + 4.717 / r_v
+    c1 = 2.030 - 3.007 * c2
+    x0, gamma, c3, c4 = 4.596, 0.99, 3.23, 0.41
+    x2 = x * x
+    drude = x2 / ((x2 - x0 * x0) ** 2 + x2 * gamma * gamma)
+    d = np.clip(x - 5.9, 0.0, None)
+    far = 0.5392 * d ** 2 + 0.05644 * d ** 3
+    return c1 + c2 * x + c3 * drude + c4 * far
+
+
+def f99_a_over_ebv(x: np.ndarray, r_v: float = DEFAULT_R_V) -> np.ndarray:
+    """A_lambda / E(B-V) of Fitzpatrick (1999, PASP 111, 63): the FM90 form above 1/2700 A
+    (x >= 3.704 / micron), and below it a natural cubic spline through the anchors of F99
+    Table 4 (0 at x = 0; 0.265 and 0.829 at 2.65 and 1.22 micron, scaled by R_V / 3.1; the
+    R_V polynomials at 6000, 5470, 4670, 4110 A; and the FM90 values at 2700 and 2600 A).
+    NaN outside 0.3 <= x <= 10 (the range shared with CCM89)."""
+    from scipy.interpolate import CubicSpline
+
+    x = np.asarray(x, dtype=np.float64)
+    out = np.full_like(x, np.nan)
+    x_uv = 1e4 / 2700.0
+    uv = (x >= x_uv) & (x <= X_RANGE[1])
+    out[uv] = _fm90_k(x[uv], r_v) + r_v
+    anchors_x = np.array([0.0, 1e4 / 26500.0, 1e4 / 12200.0, 1e4 / 6000.0, 1e4 / 5470.0,
+                          1e4 / 4670.0, 1e4 / 4110.0, 1e4 / 2700.0, 1e4 / 2600.0])
+    anchors_y = np.concatenate([
+        [0.0, 0.265 * r_v / 3.1, 0.829 * r_v / 3.1,
+         -0.426 + 1.0044 * r_v, -0.050 + 1.0016 * r_v, 0.701 + 1.0016 * r_v,
+         1.208 + 1.0032 * r_v - 0.00033 * r_v ** 2],
+        _fm90_k(anchors_x[-2:], r_v) + r_v])
+    opt = (x >= X_RANGE[0]) & (x < x_uv)
+    out[opt] = CubicSpline(anchors_x, anchors_y, bc_type="natural")(x[opt])
+    return out
+
+
+def a_lambda_over_ebv(wave_angstrom: np.ndarray, r_v: float = DEFAULT_R_V,
+                      law: str = "ccm89") -> np.ndarray:
+    """A_lambda / E(B-V) of the law at each wavelength (NaN outside 1000 A - 3.33 micron):
+    CCM89 R_V (a + b / R_V), or F99."""
+    x = 1e4 / np.asarray(wave_angstrom, dtype=np.float64)
+    if law == "f99":
+        return f99_a_over_ebv(x, r_v)
+    a, b = ccm89_a_b(x)
     return r_v * a + b
 
 
 def band_coefficient(filt: Filter, r_v: float = DEFAULT_R_V, sed: Curve | None = None,
-                     *, key: str = "filter") -> float:
-    """R_band = A_band / E(B-V): the law averaged over the filter, photon-weighted, for a flat
+                     *, key: str = "filter", law: str = "ccm89") -> float:
+    """R_band = A_band / E(B-V): ``law`` averaged over the filter, photon-weighted, for a flat
     f_nu reference source (or ``sed``, f_lambda in any scale, taken at rest).
 
     The integrand is sampled 8 times per interval of the filter table (the response is linear
@@ -98,7 +148,7 @@ def band_coefficient(filt: Filter, r_v: float = DEFAULT_R_V, sed: Curve | None =
     if x_lo < X_RANGE[0] or x_hi > X_RANGE[1]:
         raise ConfigError(
             f"{key}: filter {filt.path} spans {lo:g}-{hi:g} A, outside the {1e4 / X_RANGE[1]:g}"
-            f"-{1e4 / X_RANGE[0]:g} A where the CCM89 extinction law is defined")
+            f"-{1e4 / X_RANGE[0]:g} A where the {LAW_NAMES[law]} extinction law is defined")
     inside = (filt.wave >= lo) & (filt.wave <= hi)
     fw = filt.wave[inside]
     sub = 8
@@ -114,7 +164,7 @@ def band_coefficient(filt: Filter, r_v: float = DEFAULT_R_V, sed: Curve | None =
     if not norm > 0:
         raise ConfigError(f"{key}: the reference spectrum gives no flux through filter "
                           f"{filt.path}")
-    return float(np.trapezoid(weight * a_lambda_over_ebv(lam, r_v), lam) / norm)
+    return float(np.trapezoid(weight * a_lambda_over_ebv(lam, r_v, law), lam) / norm)
 
 
 @dataclass
@@ -135,7 +185,7 @@ class Extinction:
                 f"extinction_{band}_mag", pa.float64(), "mag",
                 UCD_EXTINCTION + (f";{word}" if word else ""),
                 f"Galactic extinction A in band {band}: {self.coefficients[band]:.4f} * E(B-V) "
-                f"(CCM89 law, R_V = {self.r_v:g}, averaged over filter {self.filters[band]} "
+                f"({LAW_NAMES[self.law]} law, R_V = {self.r_v:g}, averaged over filter {self.filters[band]} "
                 f"with photon weighting for a flat f_nu source); subtracted from the magnitude "
                 f"before colours and absolute magnitudes."))
         return out
@@ -180,7 +230,7 @@ def configure_extinction(setup, bands, options: dict) -> Extinction | None:
     """The extinction set-up when the catalogue has an E(B-V) column (or [columns] maps one),
     else None. Every band used (with a K method or lending its magnitude to a colour) needs
     a filter."""
-    law = options.get("extinction_law", "ccm89")
+    law = options.get("extinction_law", "f99")
     if law not in LAWS:
         raise setup.error("extinction_law", f"expected one of {', '.join(LAWS)}, got {law!r}")
     r_v = options.get("extinction_r_v", DEFAULT_R_V)
@@ -194,7 +244,8 @@ def configure_extinction(setup, bands, options: dict) -> Extinction | None:
         if b.filter is None:
             raise setup.error(f"{b.key}.filter", "missing: the catalogue has an E(B-V) column, "
                               "and the Galactic extinction in this band needs its filter curve")
-        coefficients[b.name] = band_coefficient(b.filter, float(r_v), key=f"{b.key}.filter")
+        coefficients[b.name] = band_coefficient(b.filter, float(r_v), key=f"{b.key}.filter",
+                                                law=law)
         filters[b.name] = b.filter.path
         pivots[b.name] = b.filter.pivot_A
     return Extinction(law=law, r_v=float(r_v), coefficients=coefficients, filters=filters,
@@ -210,4 +261,4 @@ def has_ebv(setup) -> bool:
 
 
 __all__ = ["EBV_INPUT", "EBV_HINTS", "Extinction", "a_lambda_over_ebv", "band_coefficient",
-           "ccm89_a_b", "configure_extinction", "has_ebv"]
+           "ccm89_a_b", "configure_extinction", "f99_a_over_ebv", "has_ebv"]

@@ -1,8 +1,10 @@
 """Galactic extinction per band from a per-object E(B-V) (plugins/kcorrection/extinction.py).
 
 Outside references: the closed forms of Cardelli, Clayton & Mathis (1989, ApJ 345, 245) eqs.
-2-5, evaluated independently here; the dust_extinction package (Gordon et al., CCM89 class);
-values of CCM89 Table 3 (from memory); scipy quadrature of the photon-weighted band average.
+2-5, evaluated independently here; the anchor values of Fitzpatrick (1999, PASP 111, 63)
+Table 4 and the FM90 ultraviolet form with F99's coefficients (from memory); the
+dust_extinction package (CCM89 and F99 classes); values of CCM89 Table 3 (from memory); scipy
+quadrature of the photon-weighted band average.
 """
 
 from __future__ import annotations
@@ -22,7 +24,7 @@ from annotator.pipeline import Pipeline
 from annotator.plan import build_plan
 from annotator.errors import ConfigError
 from annotator_plugins.kcorrection.extinction import (
-    a_lambda_over_ebv, band_coefficient, ccm89_a_b)
+    a_lambda_over_ebv, band_coefficient, ccm89_a_b, f99_a_over_ebv)
 from annotator_plugins.kcorrection.tables import Filter
 from annotator_plugins.kcorrection.synthetic import filter_support, pivot_wavelength
 
@@ -72,6 +74,37 @@ def test_law_matches_dust_extinction_package():
         a, b = ccm89_a_b(x)
         ref = models.CCM89(Rv=r_v)(x / units.micron)
         np.testing.assert_allclose(a + b / r_v, ref, rtol=1e-6, atol=1e-9)
+
+
+@pytest.mark.parametrize("r_v", [2.5, 3.1, 5.0])
+def test_f99_matches_its_anchors_and_uv_form(r_v):
+    # F99 Table 4 (from memory): the curve passes through A/E(B-V) = 0.265 R_V/3.1 at 2.65
+    # micron, 0.829 R_V/3.1 at 1.22 micron, -0.426 + 1.0044 R_V at 6000 A, -0.050 + 1.0016 R_V
+    # at 5470 A, 0.701 + 1.0016 R_V at 4670 A, 1.208 + 1.0032 R_V - 0.00033 R_V^2 at 4110 A.
+    lam = np.array([26500.0, 12200.0, 6000.0, 5470.0, 4670.0, 4110.0])
+    table = [0.265 * r_v / 3.1, 0.829 * r_v / 3.1, -0.426 + 1.0044 * r_v,
+             -0.050 + 1.0016 * r_v, 0.701 + 1.0016 * r_v,
+             1.208 + 1.0032 * r_v - 0.00033 * r_v ** 2]
+    np.testing.assert_allclose(f99_a_over_ebv(1e4 / lam, r_v), table, atol=1e-12)
+    # Ultraviolet: R_V + c1 + c2 x + c3 D(x) + c4 F(x) (Fitzpatrick & Massa 1990 form, F99
+    # sect. 3 coefficients), written out here at x = 4, 5, 6.5, 9 per micron.
+    c2 = -0.824 + 4.717 / r_v
+    c1 = 2.030 - 3.007 * c2
+    for x in (4.0, 5.0, 6.5, 9.0):
+        drude = x ** 2 / ((x ** 2 - 4.596 ** 2) ** 2 + x ** 2 * 0.99 ** 2)
+        far = 0.5392 * (x - 5.9) ** 2 + 0.05644 * (x - 5.9) ** 3 if x >= 5.9 else 0.0
+        expected = r_v + c1 + c2 * x + 3.23 * drude + 0.41 * far
+        assert f99_a_over_ebv(np.array([x]), r_v)[0] == pytest.approx(expected, abs=1e-12)
+
+
+def test_f99_matches_dust_extinction_package():
+    # Outside library: dust_extinction (PyPI), parameter_averages.F99 gives A/A_V.
+    units = pytest.importorskip("astropy.units")
+    models = pytest.importorskip("dust_extinction.parameter_averages")
+    x = np.linspace(0.31, 9.99, 300)
+    for r_v in (2.5, 3.1, 4.0, 5.5):
+        np.testing.assert_allclose(f99_a_over_ebv(x, r_v) / r_v,
+                                   models.F99(Rv=r_v)(x / units.micron), rtol=1e-9)
 
 
 def test_law_matches_ccm89_table_values():
@@ -149,7 +182,12 @@ def test_pipeline_subtracts_extinction_and_flags_bad_ebv(tmp_path, curves):
     plain, _ = _run(tmp_path, _catalogue(ebv).drop(["ebv"]), bands, "plain")
     coefficient = configure(tmp_path, bands, schema=_catalogue(ebv).schema).extinction \
         .coefficients["r"]
-    assert 2.0 < coefficient < 3.0  # a red band: between R and V of CCM89 (R_V = 3.1)
+    assert 2.0 < coefficient < 3.0  # a red band: between R and V (F99, R_V = 3.1)
+    assert coefficient == pytest.approx(band_coefficient(
+        configure(tmp_path, bands).bands[0].filter, 3.1, law="f99"), abs=1e-12)  # default
+    ccm = configure(tmp_path, bands, {"extinction_law": "ccm89"}, schema=_catalogue(ebv).schema)
+    assert ccm.extinction.coefficients["r"] == pytest.approx(band_coefficient(
+        ccm.bands[0].filter, 3.1, law="ccm89"), abs=1e-12)  # the option selects the law
     np.testing.assert_allclose(a[[0, 1, 2, 5]], coefficient * np.array([0.0, 0.05, 0.3, 0.1]),
                                rtol=1e-12)
     assert np.isnan(a[[3, 4]]).all()
@@ -205,6 +243,6 @@ def test_configuration_errors_name_the_key(tmp_path, curves):
     write_curve(tmp_path / "filters" / "far.csv", *filter_table(35000.0, 3000.0))
     far = {"r": {"magnitude": "mag_r", "filter": "filters/far.csv", "kcorrection": {
         "method": "power_law", "alpha": -1.0}}}
-    with pytest.raises(ConfigError, match=r"\[bands\.r\]\.filter.*CCM89"):
+    with pytest.raises(ConfigError, match=r"\[bands\.r\]\.filter.*Fitzpatrick"):
         configure(tmp_path, far, schema=schema)
     assert not math.isnan(band_coefficient(_filter(6000.0, 500.0)))
