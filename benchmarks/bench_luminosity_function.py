@@ -148,7 +148,7 @@ def zmax_cost(rows: int, sample: int, repeat: int, seed: int) -> None:
     best = math.inf
     for _ in range(repeat):
         t0 = time.process_time()
-        res = inst.vmax.compute(_NullBatch(), "amber", method, shape, z, z, mag_amber, k, mu,
+        res = inst.vmax.compute(_NullBatch(), "amber", method, shape, z, mag_amber, k, mu,
                                 absolute)
         best = min(best, time.process_time() - t0)
     zmax_batch = res["zmax_amber"]

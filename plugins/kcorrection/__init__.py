@@ -265,7 +265,7 @@ class KCorrection(Annotator):
                 out[f"extinction_{b.name}_mag"] = extinction[b.name]
             if self.vmax is not None and b.name in self.vmax.limits:
                 out.update(self.vmax.compute(
-                    batch, b.name, method, method.shape(z, colour), z_ok, z,
+                    batch, b.name, method, method.shape(z, colour), z_ok,
                     observed_mags[b.name], k, mu, absolute))
             # ---- end: extinction and V_max -----------------------------------------------
             out[f"kcorrection_{b.name}_mag"] = k

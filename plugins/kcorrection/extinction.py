@@ -185,8 +185,8 @@ class Extinction:
                 f"extinction_{band}_mag", pa.float64(), "mag",
                 UCD_EXTINCTION + (f";{word}" if word else ""),
                 f"Galactic extinction A in band {band}: {self.coefficients[band]:.4f} * E(B-V) "
-                f"({LAW_NAMES[self.law]} law, R_V = {self.r_v:g}, averaged over filter {self.filters[band]} "
-                f"with photon weighting for a flat f_nu source); subtracted from the magnitude "
+                f"({LAW_NAMES[self.law]} law, R_V = {self.r_v:g}, averaged over filter "
+                f"{self.filters[band]} with photon weighting for a flat f_nu source); subtracted from the magnitude "
                 f"before colours and absolute magnitudes."))
         return out
 

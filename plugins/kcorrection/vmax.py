@@ -223,11 +223,16 @@ class Vmax:
                 f"sample's upper redshift {hi:g}.")
         return out
 
-    def compute(self, batch, band: str, method, shape, z_cosmo: np.ndarray, z_obs: np.ndarray,
+    def compute(self, batch, band: str, method, shape, z_cosmo: np.ndarray,
                 m_obs: np.ndarray, k_obs: np.ndarray, mu: np.ndarray, m_abs: np.ndarray
                 ) -> dict[str, np.ndarray]:
-        """The columns of one band for a batch (``m_abs`` null where M is null, e.g. a missing
-        E(B-V); the limits apply to ``m_obs``, the catalogue magnitude)."""
+        """The columns of one band for a batch.
+
+        ``shape``: the objects' K-curve parameters (``method.shape`` at the observed redshift
+        and colour); ``z_cosmo``/``mu``: the redshift and distance modulus of M; ``k_obs``: K
+        at the observed redshift; ``m_abs`` null where M is null (e.g. a missing E(B-V)); the
+        limits apply to ``m_obs``, the catalogue magnitude. z' stands for both the observed
+        and the cosmological redshift of the moved object."""
         lim = self.limits[band]
         lo, hi = self.z_range
         n = z_cosmo.size

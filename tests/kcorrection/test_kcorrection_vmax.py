@@ -19,7 +19,7 @@ from scipy.optimize import brentq
 import _schechter
 from _kcorr_helpers import column, configure
 from annotator.config import job_from_mapping
-from annotator.cosmology import Cosmology, preset
+from annotator.cosmology import preset
 from annotator.errors import ConfigError
 from annotator.pipeline import Pipeline
 from annotator.plan import build_plan
