@@ -186,8 +186,8 @@ class Extinction:
                 UCD_EXTINCTION + (f";{word}" if word else ""),
                 f"Galactic extinction A in band {band}: {self.coefficients[band]:.4f} * E(B-V) "
                 f"({LAW_NAMES[self.law]} law, R_V = {self.r_v:g}, averaged over filter "
-                f"{self.filters[band]} with photon weighting for a flat f_nu source); subtracted from the magnitude "
-                f"before colours and absolute magnitudes."))
+                f"{self.filters[band]} with photon weighting for a flat f_nu source); "
+                f"subtracted from the magnitude before colours and absolute magnitudes."))
         return out
 
     def flags(self) -> dict[str, str]:
