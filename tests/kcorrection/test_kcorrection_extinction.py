@@ -246,3 +246,25 @@ def test_configuration_errors_name_the_key(tmp_path, curves):
     with pytest.raises(ConfigError, match=r"\[bands\.r\]\.filter.*Fitzpatrick"):
         configure(tmp_path, far, schema=schema)
     assert not math.isnan(band_coefficient(_filter(6000.0, 500.0)))
+
+
+def test_ebv_column_found_by_name_or_mapping(tmp_path, curves):
+    # The E(B-V) input is found under the usual names (any case) or through [columns] ebv.
+    from annotator.api import Setup
+    from annotator.cosmology import preset
+    from annotator_plugins.kcorrection import KCorrection
+
+    k = {"method": "template", "sed": "seds/early.csv", "z_max": 1.0}
+    bands = {"r": {"magnitude": "mag_r", "filter": "filters/red.csv", "kcorrection": k}}
+
+    def setup(names, columns):
+        schema = pa.schema([("z", pa.float64()), ("mag_r", pa.float64())]
+                           + [(n, pa.float64()) for n in names])
+        return Setup(annotator_name="kcorrection", options={}, sections={"bands": bands},
+                     columns=columns, catalogue_schema=schema, cosmology=preset("planck2018"),
+                     base_dir=tmp_path)
+
+    assert KCorrection.configure(setup(["EBV_SFD"], {})).extinction is not None
+    assert KCorrection.configure(setup(["dust"], {})).extinction is None
+    mapped = KCorrection.configure(setup(["dust"], {"ebv": "dust"}))
+    assert mapped.extinction is not None and "ebv" in mapped.requires
