@@ -196,3 +196,19 @@ def test_luminosity_function_closed_loop(tmp_path):
     assert sigma["m_star"] < 0.1 and sigma["alpha"] < 0.05  # the test has power
     assert n == table.num_rows > 5_000
     assert abs(mean_ratio - 0.5) < 3.0 / math.sqrt(12 * n)
+
+
+def test_luminosity_function_selection_is_offered_only_with_vmax_columns():
+    from annotator_plugins.kcorrection.vmax import register_selections
+
+    def manifest(*names):
+        return {"columns_added": [{"name": n} for n in names]}
+
+    assert register_selections(manifest("absolute_magnitude_r_mag")) == []
+    (sel,) = register_selections(manifest("absolute_magnitude_r_mag", "vmax_r_mpc3",
+                                          "absolute_magnitude_g_mag", "vmax_g_mpc3"))
+    band = next(p for p in sel.parameters if p.name == "band")
+    assert band.choices == ("g", "r")
+    assert "must be above 0" in sel.check({"band": "r", "bin_mag": 0.0})
+    sql = sel.render({"band": "r", "bin_mag": 0.5})
+    assert '"vmax_r_mpc3"' in sql and "0.5" in sql
