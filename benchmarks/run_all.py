@@ -17,6 +17,7 @@ SCRIPTS = [
     ("bench_pipeline.py", []),
     ("bench_fits.py", []),
     ("bench_kcorrection.py", []),
+    ("bench_luminosity_function.py", []),
     ("bench_uncertainty.py", []),
     ("bench_sql.py", []),
     ("bench_dask.py", []),
