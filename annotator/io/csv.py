@@ -77,6 +77,23 @@ def iter_line_blocks(path: Path, block_bytes: int) -> Iterator[bytes]:
             tail = data[cut + 1:]
 
 
+def _first_block(path: Path, size: int) -> tuple[bytes, bool]:
+    """The first ``size`` bytes cut after their last newline (the first line whole, however
+    long), and whether that is the whole file."""
+    with _open_binary(path) as fh:
+        data = fh.read(size)
+        more = fh.read(1)
+        if not more:
+            return data, True
+        data += more
+        while b"\n" not in data:
+            piece = fh.read(size)
+            if not piece:
+                return data, True
+            data += piece
+        return data[: data.rfind(b"\n") + 1], False
+
+
 def check_encoding(encoding: str, key: str = "[input].encoding") -> str:
     """The codec's canonical name; refused unless ASCII-compatible (lines are cut on bytes)."""
     try:
@@ -133,8 +150,10 @@ class CsvReader:
 
     def __init__(self, source: Source, *, delimiter: str = ",", column_types: dict | None = None,
                  encoding: str = "utf-8", missing_tokens=DEFAULT_MISSING_TOKENS,
-                 numeric=(), block_bytes: int = CSV_BLOCK_BYTES,
-                 sample_bytes: int = SAMPLE_BYTES):
+                 numeric=(), block_bytes: int | None = None, sample_bytes: int | None = None):
+        # module constants read at call time, so tests can make blocks small
+        block_bytes = block_bytes or CSV_BLOCK_BYTES
+        sample_bytes = sample_bytes or SAMPLE_BYTES
         self.source = source
         self.delimiter = delimiter
         self.block_bytes = block_bytes
@@ -144,7 +163,7 @@ class CsvReader:
         self.column_types = dict(column_types or {})
         self._delim_b = delimiter.encode()
         try:
-            first = next(iter_line_blocks(source.path, max(sample_bytes, 1 << 16)), b"")
+            first, whole = _first_block(source.path, sample_bytes)
         except (OSError, EOFError, gzip.BadGzipFile) as exc:
             raise InputError(f"input {source.path}: cannot read: {exc}") from exc
         if not first.strip():
@@ -178,8 +197,7 @@ class CsvReader:
                 f"{sorted(unknown)[0]!r}, which is not in the header"
             )
         # Whether the first block is the whole file: then its types are the whole file's.
-        self._sample_is_whole = len(first) < max(sample_bytes, 1 << 16) and \
-            (source.size_bytes <= len(first) or not source.path.name.lower().endswith(".gz"))
+        self._sample_is_whole = whole
         self._sample_body = body if newline else b""
         self._sample_lines = max(self._sample_body.count(b"\n"), 1)
         self._sample_len = len(first)
