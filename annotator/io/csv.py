@@ -58,23 +58,28 @@ def _open_binary(path: Path):
     return raw
 
 
-def iter_line_blocks(path: Path, block_bytes: int) -> Iterator[bytes]:
-    """Blocks of whole lines (each ends with a newline, except perhaps the last)."""
+def iter_line_blocks(path: Path, block_bytes: int) -> Iterator[bytearray]:
+    """Blocks of whole lines (each ends with a newline, except perhaps the last), read into
+    a fresh buffer each (one copy from the file; pyarrow reads the buffer without another)."""
     with _open_binary(path) as fh:
         tail = b""
         while True:
-            data = fh.read(block_bytes)
-            if not data:
+            buf = bytearray(len(tail) + block_bytes)
+            buf[: len(tail)] = tail
+            n = fh.readinto(memoryview(buf)[len(tail):])
+            if not n:
                 if tail:
-                    yield tail
+                    yield bytearray(tail)
                 return
-            data = tail + data
-            cut = data.rfind(b"\n")
+            del buf[len(tail) + n:]
+            cut = buf.rfind(b"\n")
             if cut < 0:
-                tail = data
+                tail = bytes(buf)
+                block_bytes *= 2
                 continue
-            yield data[: cut + 1]
-            tail = data[cut + 1:]
+            tail = bytes(buf[cut + 1:])
+            del buf[cut + 1:]
+            yield buf
 
 
 def _first_block(path: Path, size: int) -> tuple[bytes, bool]:
@@ -202,7 +207,7 @@ class CsvReader:
         self._sample_lines = max(self._sample_body.count(b"\n"), 1)
         self._sample_len = len(first)
         self._records = 0
-        sample_types = self._infer(self._sample_body, 2, names)
+        sample_types, _ = self._infer(self._sample_body, 2, names)
         #: data rows (records) of the whole file, when a pass has counted them
         self.exact_rows = self._records if self._sample_is_whole else None
         self.sample_types = sample_types
@@ -224,51 +229,69 @@ class CsvReader:
             fields.append(pa.field(name, typ))
         return pa.schema(fields)
 
-    def _infer(self, body: bytes, first_line: int, columns: list[str]) -> dict:
-        """Types of ``columns`` in one block; counts its records in ``self._records``."""
-        clean, numbers, rejected = self._clean(body, first_line)
-        self._records += len(rejected) + (
-            (clean.count(b"\n") + (0 if clean.endswith(b"\n") else 1)) if numbers is None and
-            clean else (len(numbers) if numbers is not None else 0))
+    def _infer(self, body, first_line: int, columns: list[str],
+               known: dict | None = None) -> tuple[dict, int]:
+        """Types of ``columns`` in one block, and the block's physical line count; counts its
+        records in ``self._records``. With ``known`` types, the block is first read with them
+        (cheap); pyarrow's inference runs only when a value does not fit."""
+        clean, numbers, rejected, n_lines = self._clean(body, first_line)
+        self._records += len(rejected) + len(numbers)
         if not columns:
-            return {}
+            return {}, n_lines
         if not clean:
-            return {n: pa.null() for n in columns}
+            return {n: pa.null() for n in columns}, n_lines
+        read = pacsv.ReadOptions(column_names=self.names, block_size=len(clean) + 1,
+                                 use_threads=False)
+        parse = pacsv.ParseOptions(delimiter=self.delimiter, invalid_row_handler=lambda r: "skip")
+        if known:
+            fixed = {n: t for n, t in known.items() if not pa.types.is_null(t)}
+            try:
+                table = pacsv.read_csv(
+                    pa.BufferReader(pa.py_buffer(clean)), read_options=read, parse_options=parse,
+                    convert_options=pacsv.ConvertOptions(
+                        include_columns=columns, column_types=fixed,
+                        null_values=self.missing_tokens, strings_can_be_null=True,
+                        quoted_strings_can_be_null=True))
+                return {n: (known[n] if n in fixed else _normal_type(table.column(n)))
+                        for n in columns}, n_lines
+            except pa.ArrowInvalid:
+                pass  # some value needs a wider type: infer this block
         table = pacsv.read_csv(
-            io.BytesIO(clean),
-            read_options=pacsv.ReadOptions(column_names=self.names,
-                                           block_size=len(clean) + 1),
-            parse_options=pacsv.ParseOptions(delimiter=self.delimiter,
-                                              invalid_row_handler=lambda r: "skip"),
+            pa.BufferReader(pa.py_buffer(clean)), read_options=read, parse_options=parse,
             convert_options=pacsv.ConvertOptions(
                 include_columns=columns, null_values=self.missing_tokens,
                 strings_can_be_null=True, quoted_strings_can_be_null=True),
         )
-        return {n: _normal_type(table.column(n)) for n in columns}
+        return {n: _normal_type(table.column(n)) for n in columns}, n_lines
 
     def resolve_types(self, numeric) -> pa.Schema:
         """The schema for a job that reads ``numeric`` as numbers: those float64, the rest
-        typed over the whole file (one pass over the other columns, unless the first block
-        was the whole file or ``column_types`` fixes them all)."""
+        typed over the whole file: one pass over the columns whose type is not yet certain
+        (text is certain), read with the types found so far and inferred again only for a
+        block where a value does not fit. No pass when the first block is the whole file or
+        ``column_types`` fixes every other column."""
         numeric = set(numeric)
         rest = [n for n in self.names if n not in numeric and n not in self.column_types]
-        if self._sample_is_whole or not rest:
-            inferred = {n: self.sample_types[n] for n in rest}
-        else:
-            inferred = {n: pa.null() for n in rest}
+        inferred = {n: self.sample_types[n] for n in rest}
+        open_ = [n for n in rest if not pa.types.is_string(inferred[n])]
+        if not self._sample_is_whole and open_:
             line = 2
             self._records = 0
             try:
                 for block in self._body_blocks():
-                    if block[0]:
-                        line = block[1]
-                        got = self._infer(block[0], line, rest)
-                        for n in rest:
-                            inferred[n] = widest(inferred[n], got[n])
+                    got, n_lines = self._infer(block, line, open_,
+                                               known={n: inferred[n] for n in open_})
+                    line += n_lines
+                    for n in open_:
+                        inferred[n] = widest(inferred[n], got[n])
+                    open_ = [n for n in open_ if not pa.types.is_string(inferred[n])]
+                    if not open_:
+                        break
+                else:
+                    self.exact_rows = self._records
             except (OSError, EOFError, gzip.BadGzipFile, pa.ArrowException) as exc:
                 raise InputError(f"input {self.source.path}: unreadable near line {line}: "
                                  f"{exc}") from exc
-            self.exact_rows = self._records
         self.schema = self._schema(numeric, inferred)
         return self.schema
 
@@ -277,9 +300,9 @@ class CsvReader:
         typ = self.sample_types.get(column, pa.null())
         if not pa.types.is_string(typ):
             return True
-        clean, _, _ = self._clean(self._sample_body, 2)
+        clean, _, _, _ = self._clean(self._sample_body, 2)
         table = pacsv.read_csv(
-            io.BytesIO(clean),
+            pa.BufferReader(pa.py_buffer(clean)),
             read_options=pacsv.ReadOptions(column_names=self.names, block_size=len(clean) + 1),
             parse_options=pacsv.ParseOptions(delimiter=self.delimiter,
                                               invalid_row_handler=lambda r: "skip"),
@@ -305,28 +328,41 @@ class CsvReader:
                 "raw": raw.rstrip(b"\r").decode(self.encoding, errors="backslashreplace")
                 if self.utf8 else _decode_lenient(raw.rstrip(b"\r"), self.encoding)}
 
-    def _clean(self, block: bytes, first_line: int
-               ) -> tuple[bytes, np.ndarray | None, list[dict]]:
-        """UTF-8 text of the block's readable lines, their physical line numbers (``None``:
-        every line of the block, in order, none empty) and the lines set aside."""
+    def _clean(self, block, first_line: int
+               ) -> tuple[bytes, np.ndarray, list[dict], int]:
+        """UTF-8 text of the block's readable lines, their physical line numbers, the lines
+        set aside, and the block's count of physical lines. Cheap whole-block checks first;
+        the per-line pass only for a block that fails one."""
         if not block:
-            return b"", None, []
+            return b"", np.zeros(0, dtype=np.int64), [], 0
+        arr = np.frombuffer(block, dtype=np.uint8)
+        ends = np.flatnonzero(arr == 10)
+        n_lines = len(ends) + (0 if len(ends) and ends[-1] == len(arr) - 1 else 1)
         decoded_ok = True
         if not block.isascii():
             try:
                 text = block.decode(self.encoding)
                 if not self.utf8:
                     block = text.encode("utf-8")
+                    arr = np.frombuffer(block, dtype=np.uint8)
+                    ends = np.flatnonzero(arr == 10)
             except UnicodeDecodeError:
                 decoded_ok = False
         odd_quotes = False
-        if decoded_ok and QUOTE in block:
-            odd_quotes = bool(_odd_quote_lines(block).any())
-        blank = b"\n\n" in block or block.startswith((b"\n", b"\r\n", b"\r")) or \
-            b"\n\r\n" in block
+        if decoded_ok and block.find(QUOTE) >= 0:
+            odd_quotes = bool(_odd_quote_lines(arr, ends).any())
+        # empty lines ("" or a lone "\r") are not rows: then their numbers must be skipped
+        bounds = np.concatenate((np.array([-1], dtype=np.int64), ends,
+                                 np.array([len(arr)] if n_lines > len(ends) else [],
+                                          dtype=np.int64)))
+        lengths = np.diff(bounds) - 1
+        stops = bounds[1:]
+        blank = bool(((lengths == 0) | ((lengths == 1) & (arr[np.maximum(stops - 1, 0)] == 13))
+                      ).any())
         if decoded_ok and not odd_quotes and not blank:
-            return block, None, []
-        return self._clean_lines(block, first_line, decoded_ok)
+            return block, first_line + np.arange(n_lines, dtype=np.int64), [], n_lines
+        clean, numbers, rejected = self._clean_lines(block, first_line, decoded_ok)
+        return clean, numbers, rejected, n_lines
 
     def _clean_lines(self, block: bytes, first_line: int, decoded_ok: bool,
                      state_machine: bool = False):
@@ -367,13 +403,13 @@ class CsvReader:
         return text, np.asarray(numbers, dtype=np.int64), rejected
 
     # -- parsing ------------------------------------------------------------------------
-    def _read(self, clean: bytes, types: dict, invalid: list):
+    def _read(self, clean, types: dict, invalid: list):
         def on_invalid(row):
             invalid.append((row.number, row.text))
             return "skip"
 
         return pacsv.read_csv(
-            io.BytesIO(clean),
+            pa.BufferReader(pa.py_buffer(clean)),
             read_options=pacsv.ReadOptions(column_names=self.names, use_threads=False,
                                            block_size=len(clean) + 1),
             parse_options=pacsv.ParseOptions(delimiter=self.delimiter,
@@ -383,15 +419,13 @@ class CsvReader:
                 quoted_strings_can_be_null=True),
         )
 
-    def parse_block(self, block: bytes, first_line: int, target: pa.Schema
-                    ) -> tuple[pa.Table, list[dict]]:
-        """Parse one block of whole lines that starts at physical line ``first_line``."""
-        clean, numbers, rejected = self._clean(block, first_line)
+    def parse_block(self, block, first_line: int, target: pa.Schema
+                    ) -> tuple[pa.Table, list[dict], int]:
+        """Parse one block of whole lines that starts at physical line ``first_line``;
+        returns the rows read, the rows set aside and the block's count of physical lines."""
+        clean, numbers, rejected, n_lines = self._clean(block, first_line)
         if not clean:
-            return target.empty_table(), rejected
-        if numbers is None:
-            n_records = clean.count(b"\n") + (0 if clean.endswith(b"\n") else 1)
-            numbers = first_line + np.arange(n_records, dtype=np.int64)
+            return target.empty_table(), rejected, n_lines
         table, invalid, cast_failed = self._read_typed(clean, target)
         if table.num_rows + len(invalid) != len(numbers):
             # A quote opened in the middle of a field swallowed later lines: find the lines
@@ -399,13 +433,14 @@ class CsvReader:
             clean, numbers, rejected = self._clean_lines(block, first_line, False,
                                                          state_machine=True)
             if not clean:
-                return target.empty_table(), rejected
+                return target.empty_table(), rejected, n_lines
             table, invalid, cast_failed = self._read_typed(clean, target)
             if table.num_rows + len(invalid) != len(numbers):
-                last = first_line + block.count(b"\n")
-                raise InputError(f"input {self.source.path}: lines {first_line} to {last}: "
-                                 f"rows cannot be told apart (unbalanced quotes)")
-        return self._finish(table, invalid, numbers, target, cast_failed, rejected)
+                raise InputError(f"input {self.source.path}: lines {first_line} to "
+                                 f"{first_line + n_lines - 1}: rows cannot be told apart "
+                                 f"(unbalanced quotes)")
+        table, rejected = self._finish(table, invalid, numbers, target, cast_failed, rejected)
+        return table, rejected, n_lines
 
     def _read_typed(self, clean: bytes, target: pa.Schema):
         """(table, invalid rows, whether a cell failed its type: then all columns are text)."""
@@ -466,19 +501,17 @@ class CsvReader:
             raise InputError(f"input {self.source.path}: cannot convert columns: {exc}") from exc
         return kept, sorted(bad_reason.items())
 
-    def _body_blocks(self) -> Iterator[tuple[bytes, int]]:
-        """(block, its first physical line) after the header, which may lack a newline."""
-        line = 1
+    def _body_blocks(self) -> Iterator[bytearray]:
+        """The blocks after the header line (which may lack a newline); the first data line
+        is physical line 2."""
         first = True
         for block in iter_line_blocks(self.source.path, self.block_bytes):
-            n_lines = block.count(b"\n") + (0 if block.endswith(b"\n") else 1)
             if first:
                 first = False
                 cut = block.find(b"\n")
-                block = b"" if cut < 0 else block[cut + 1:]
-                line, n_lines = 2, n_lines - 1
-            yield block, line
-            line += n_lines
+                block = bytearray() if cut < 0 else block[cut + 1:]
+            if block:
+                yield block
 
     def chunks(self, chunk_rows: int, start_chunk: int = 0, target: pa.Schema | None = None
                ) -> Iterator[Chunk]:
@@ -492,12 +525,11 @@ class CsvReader:
         pending: list[pa.Table] = []
         pending_rows = 0
         pending_rejected: list[dict] = []
-        line = 1
+        line = 2
         try:
-            for block, line in self._body_blocks():
-                if not block:
-                    continue
-                table, rejected = self.parse_block(block, line, target)
+            for block in self._body_blocks():
+                table, rejected, n_lines = self.parse_block(block, line, target)
+                line += n_lines
                 pending.append(table)
                 pending_rows += table.num_rows
                 pending_rejected.extend(rejected)
@@ -527,11 +559,9 @@ def _decode_lenient(raw: bytes, encoding: str) -> str:
         return raw.decode(encoding, errors="backslashreplace")
 
 
-def _odd_quote_lines(block: bytes) -> np.ndarray:
+def _odd_quote_lines(arr: np.ndarray, ends: np.ndarray) -> np.ndarray:
     """Per line of the block: whether it holds an odd number of quote characters."""
-    arr = np.frombuffer(block, dtype=np.uint8)
     quotes = np.cumsum(arr == QUOTE[0], dtype=np.int64)
-    ends = np.flatnonzero(arr == 10)
     if not len(ends) or ends[-1] != len(arr) - 1:
         ends = np.append(ends, len(arr) - 1)
     at_end = quotes[ends]
