@@ -175,6 +175,8 @@ class CsvReader:
             raise InputError(f"input {source.path}: empty file (a header line is needed)")
         header, newline, body = first.partition(b"\n")
         self.header = header.rstrip(b"\r")
+        if self.utf8 and self.header.startswith(codecs.BOM_UTF8):
+            self.header = self.header[len(codecs.BOM_UTF8):]  # a byte-order mark is no name
         try:
             text = self.header.decode(self.encoding)
         except UnicodeDecodeError as exc:

@@ -309,3 +309,14 @@ def test_text_column_mapped_as_a_number_is_refused_in_one_line(tmp_path, capsys)
     assert rc == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "'name'" in err[0] and "holds no number" in err[0]
+
+
+def test_utf8_byte_order_mark_is_not_part_of_the_first_name(tmp_path):
+    # The UTF-8 byte-order mark (Unicode Standard, section 23.8) that some spreadsheet
+    # programs write before the header.
+    data = b"\xef\xbb\xbfid,z\r\n1,0.5\r\n"
+    rc, out = _run(tmp_path, data)
+    assert rc == 0
+    manifest, table, rejected = _outputs(out)
+    assert table.column_names[:2] == ["id", "z"]
+    assert table.column("id").to_pylist() == [1]
