@@ -309,7 +309,10 @@ def build_plan(job: Job, pm=None) -> Plan:
             logical = name[len(OBSERVED_PREFIX):] if name.startswith(OBSERVED_PREFIX) else name
             if kind == "catalogue" and logical not in text:
                 numeric.add(col)
-    typed = [r.resolve_types(numeric) for r in readers if hasattr(r, "resolve_types")]
+    # The first input's types rule (later inputs are cast to them, rows that cannot be set
+    # aside); only when it is a text format are they found from the values of every text input.
+    typed = [r.resolve_types(numeric) for r in readers if hasattr(r, "resolve_types")] \
+        if hasattr(readers[0], "resolve_types") else []
     if typed:
         fields = {f.name: f.type for f in typed[0]}
         for other in typed[1:]:
