@@ -320,3 +320,20 @@ def test_utf8_byte_order_mark_is_not_part_of_the_first_name(tmp_path):
     manifest, table, rejected = _outputs(out)
     assert table.column_names[:2] == ["id", "z"]
     assert table.column("id").to_pylist() == [1]
+
+
+def test_csv_after_a_parquet_input_takes_the_parquet_types(tmp_path):
+    # The first input's types rule: a CSV read second is cast to them, and a cell that cannot
+    # be cast sets its row aside (the Parquet rows keep their types).
+    pq.write_table(pa.table({"id": pa.array([1, 2], pa.int64()), "z": [0.1, 0.2]}),
+                   tmp_path / "a.parquet")
+    data = b"id,z\n3,0.3\nQDS-4,0.4\n5,0.5\n"
+    (tmp_path / "b.csv").write_bytes(data)
+    job = tmp_path / "job.toml"
+    job.write_text('[input]\npaths = ["a.parquet", "b.csv"]\n[output]\ndir = "out"\n')
+    assert main(["run", "--config", str(job), "--quiet"]) == 0
+    manifest, table, rejected = _outputs(tmp_path / "out")
+    assert table.schema.field("id").type == pa.int64()
+    assert table.column("id").to_pylist() == [1, 2, 3, 5]
+    assert [(r["row"], r["raw"]) for r in rejected] == [(3, "QDS-4,0.4")]
+    assert manifest["rows_read"] == manifest["rows_written"] + manifest["rows_rejected"] == 5
