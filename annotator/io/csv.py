@@ -359,10 +359,12 @@ class CsvReader:
                                           dtype=np.int64)))
         lengths = np.diff(bounds) - 1
         stops = bounds[1:]
-        blank = bool(((lengths == 0) | ((lengths == 1) & (arr[np.maximum(stops - 1, 0)] == 13))
-                      ).any())
-        if decoded_ok and not odd_quotes and not blank:
-            return block, first_line + np.arange(n_lines, dtype=np.int64), [], n_lines
+        blank = (lengths == 0) | ((lengths == 1) & (arr[np.maximum(stops - 1, 0)] == 13))
+        if decoded_ok and not odd_quotes:
+            # pyarrow skips empty lines itself: only their numbers need leaving out
+            numbers = first_line + (np.flatnonzero(~blank) if blank.any()
+                                    else np.arange(n_lines, dtype=np.int64))
+            return block, numbers, [], n_lines
         clean, numbers, rejected = self._clean_lines(block, first_line, decoded_ok)
         return clean, numbers, rejected, n_lines
 
