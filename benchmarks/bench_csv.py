@@ -109,6 +109,7 @@ t = cpu()
 for chunk in reader.chunks(250_000, target=schema):
     pass
 main = cpu() - t
+peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 t = cpu()
 for b in c.open_csv(sys.argv[1], read_options=c.ReadOptions(block_size=8 << 20)):
     pass
@@ -116,7 +117,7 @@ floor = cpu() - t
 print(f"reader only, CPU s: open (header + 4 MiB type sample) {opened:.2f}, first pass "
       f"(types of the 8 columns no annotator reads) {first:.2f}, main pass (clean + typed "
       f"parse + chunking) {main:.2f}; pyarrow alone {floor:.2f}; reader total / floor "
-      f"{(opened + first + main) / floor:.2f}x")
+      f"{(opened + first + main) / floor:.2f}x; peak RSS of the reader alone {peak:.0f} MiB")
 """
 
 
