@@ -216,7 +216,8 @@ class CsvReader:
         self.schema = self._schema(set(numeric), sample_types)
 
     # -- types ------------------------------------------------------------------------
-    def _schema(self, numeric: set[str], inferred: dict[str, pa.DataType]) -> pa.Schema:
+    def _schema(self, numeric: set[str], inferred: dict[str, pa.DataType],
+                final: bool = False) -> pa.Schema:
         fields = []
         for name in self.names:
             if name in self.column_types:
@@ -226,8 +227,10 @@ class CsvReader:
             else:
                 typ = inferred.get(name, pa.null())
                 if pa.types.is_null(typ):
-                    # no value seen: numbers are the likelier use (an empty error column)
-                    typ = pa.float64() if not numeric else pa.string()
+                    # No value seen. In the first block: numbers are the likelier use (an
+                    # empty error column an annotator may read); in the whole file, when no
+                    # annotator reads it as a number: text, which holds anything.
+                    typ = pa.string() if final else pa.float64()
             fields.append(pa.field(name, typ))
         return pa.schema(fields)
 
@@ -294,7 +297,7 @@ class CsvReader:
             except (OSError, EOFError, gzip.BadGzipFile, pa.ArrowException) as exc:
                 raise InputError(f"input {self.source.path}: unreadable near line {line}: "
                                  f"{exc}") from exc
-        self.schema = self._schema(numeric, inferred)
+        self.schema = self._schema(numeric, inferred, final=True)
         return self.schema
 
     def holds_numbers(self, column: str) -> bool:

@@ -337,3 +337,14 @@ def test_csv_after_a_parquet_input_takes_the_parquet_types(tmp_path):
     assert table.column("id").to_pylist() == [1, 2, 3, 5]
     assert [(r["row"], r["raw"]) for r in rejected] == [(3, "QDS-4,0.4")]
     assert manifest["rows_read"] == manifest["rows_written"] + manifest["rows_rejected"] == 5
+
+
+def test_a_column_without_any_value_is_text_and_keeps_every_row(tmp_path, small_blocks):
+    rows = ["id,z,note"] + [f"{i},0.{i % 9 + 1}," for i in range(600)]
+    data = ("\n".join(rows) + "\n").encode()
+    rc, out = _run(tmp_path, data)
+    assert rc == 0
+    manifest, table, rejected = _outputs(out)
+    _reconciles(data, manifest, rejected)
+    assert table.schema.field("note").type == pa.string()
+    assert table.column("note").null_count == 600
