@@ -21,6 +21,7 @@ SCRIPTS = [
     ("bench_uncertainty.py", []),
     ("bench_sql.py", []),
     ("bench_dask.py", []),
+    ("bench_csv.py", []),
 ]
 
 
