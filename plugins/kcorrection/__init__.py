@@ -31,7 +31,7 @@ from annotator import Annotator, ColumnSpec, hookimpl
 
 from .._redshift import REDSHIFT_HINTS
 from .methods import (
-    LN10, Method, Polynomial, PowerLaw, PowerLawFromColour, Template,
+    DEFAULT_MAX_COLOUR_SENSITIVITY, LN10, Method, Polynomial, PowerLaw, PowerLawFromColour, Template,
     TemplateMix,
 )
 from .tables import (
@@ -47,7 +47,8 @@ METHOD_KEYS = {
     "power_law": ("method", "alpha", "z_max"),
     "power_law_colour": ("method", "colour", "alpha_range", "z_max"),
     "template": ("method", "sed", "z_max"),
-    "template_mix": ("method", "seds", "colour", "z_max", "clip_tolerance_mag"),
+    "template_mix": ("method", "seds", "colour", "z_max", "clip_tolerance_mag",
+                     "max_colour_sensitivity"),
     "polynomial": ("method", "coefficients", "colour", "z_max", "colour_range"),
 }
 OPTIONS = ("tolerance_mag", "use_redshift_error")
@@ -340,7 +341,7 @@ def _method(setup, band: BandSpec, spec, bands: dict[str, BandSpec], tolerance: 
                           f"{', '.join(METHOD_KEYS[kind])})")
     for required in METHOD_KEYS[kind][1:]:
         optional = required in ("z_max", "alpha_range", "colour_range",
-                                "clip_tolerance_mag") and not (
+                                "clip_tolerance_mag", "max_colour_sensitivity") and not (
             kind == "polynomial" and required == "z_max")
         if required not in spec and not optional:
             raise setup.error(f"{key}.{required}", f"missing (method {kind!r} needs "
@@ -417,8 +418,16 @@ def _method(setup, band: BandSpec, spec, bands: dict[str, BandSpec], tolerance: 
                        what="a colour difference in mag, >= 0")
         if clip < 0:
             raise setup.error(f"{key}.clip_tolerance_mag", f"expected >= 0, got {clip:g}")
+    sensitivity = DEFAULT_MAX_COLOUR_SENSITIVITY
+    if "max_colour_sensitivity" in spec:
+        sensitivity = _number(setup, f"{key}.max_colour_sensitivity",
+                              spec["max_colour_sensitivity"],
+                              what="a bound on |dK/dcolour| in mag per mag, > 0")
+        if sensitivity <= 0:
+            raise setup.error(f"{key}.max_colour_sensitivity", f"expected > 0, got "
+                              f"{sensitivity:g}")
     return TemplateMix.build(seds, band.filter, rest, colour, colour_filters, z_max, key,
-                             tolerance, clip)
+                             tolerance, clip, sensitivity)
 
 
 def _coefficients(setup, key: str, value) -> np.ndarray:

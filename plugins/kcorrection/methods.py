@@ -38,6 +38,9 @@ COLOUR_MISSING = "colour_missing"
 COLOUR_OUTSIDE = "colour_outside_range"
 COLOUR_CLIPPED = "colour_clipped"
 COLOUR_DEGENERATE = "colour_degenerate"
+COLOUR_INSENSITIVE = "colour_insensitive"
+#: Default bound on |dK/dcolour| of a template mixture (mag of K per mag of colour).
+DEFAULT_MAX_COLOUR_SENSITIVITY = 5.0
 
 
 def _mag_error(guess: np.ndarray, exact: np.ndarray) -> np.ndarray:
@@ -315,6 +318,8 @@ class MixSolution:
     clipped: np.ndarray  # beyond a template's colour by <= clip_tolerance_mag: its K
     outside: np.ndarray  # beyond by more: null K
     degenerate: np.ndarray  # both templates have the same colour here: null K
+    insensitive: np.ndarray  # |dK/dc| above the bound: the colour cannot fix K; null K
+    sensitivity: np.ndarray  # dK/dc at the mixture found (NaN where there is none)
     missing: np.ndarray  # no colour
 
 
@@ -343,7 +348,14 @@ class TemplateMix(Method):
       K, flagged ``colour_clipped`` (the value is kept: photometric noise alone scatters about
       half of the objects of the bluest and of the reddest type a little beyond them);
     * beyond it by more: null K and absolute magnitude, flag ``colour_outside_range`` (no
-      extrapolated or end-member K is ever returned unflagged).
+      extrapolated or end-member K is ever returned unflagged);
+    * where the colour barely moves with w while K does, i.e. ``|dK/dc| =
+      |(dF_R / F_R) / (dF_p / F_p - dF_q / F_q)|`` at the mixture found exceeds
+      ``max_colour_sensitivity`` (mag of K per mag of colour), a colour error of a few
+      hundredths of a magnitude would move K by tenths or more: null K, flag
+      ``colour_insensitive``. (With the demo survey's early and star-forming templates and
+      amber - infrared this happens near the star-forming end beyond z ~ 1.3, where the
+      early template adds infrared light but almost no observed amber light.)
     """
 
     colour: tuple[str, str]
@@ -356,6 +368,7 @@ class TemplateMix(Method):
     degenerate_mag: float = 1e-3
     #: A colour this close (mag) to a template's is taken as that template's, unflagged.
     on_template_mag: float = 1e-4
+    max_colour_sensitivity: float = DEFAULT_MAX_COLOUR_SENSITIVITY
     kind: ClassVar[str] = "template_mix"
 
     def __post_init__(self) -> None:
@@ -374,7 +387,9 @@ class TemplateMix(Method):
     @classmethod
     def build(cls, seds: tuple[Curve, Curve], filt: Filter, rest: Filter,
               colour: tuple[str, str], colour_filters: tuple[Filter, Filter], z_max: float,
-              key: str, tolerance: float, clip_tolerance_mag: float = 0.1) -> "TemplateMix":
+              key: str, tolerance: float, clip_tolerance_mag: float = 0.1,
+              max_colour_sensitivity: float = DEFAULT_MAX_COLOUR_SENSITIVITY
+              ) -> "TemplateMix":
         # The band is often one of the colour's bands (r with g - r): tabulate each distinct
         # filter once.
         distinct: list[Filter] = []
@@ -408,7 +423,8 @@ class TemplateMix(Method):
         table = cached_table(parts, build_table)
         return cls(colour=colour, table=table, columns=tuple(columns),
                    sed_paths=(seds[0].path, seds[1].path), z_max=z_max,
-                   clip_tolerance_mag=clip_tolerance_mag)
+                   clip_tolerance_mag=clip_tolerance_mag,
+                   max_colour_sensitivity=max_colour_sensitivity)
 
     def flag_suffixes(self):
         out = super().flag_suffixes()
@@ -425,6 +441,11 @@ class TemplateMix(Method):
             f"Both templates have the same colour {p} - {q} at this redshift (within "
             f"{self.degenerate_mag:g} mag), so the colour cannot choose a mixture: null "
             f"K-correction and absolute magnitude.")
+        out[COLOUR_INSENSITIVE] = (
+            f"At this redshift and colour the mixture's K-correction changes by more than "
+            f"{self.max_colour_sensitivity:g} mag per mag of {p} - {q} (the colour hardly "
+            f"depends on the mixture while K does), so the colour cannot fix K: null "
+            f"K-correction and absolute magnitude.")
         return out
 
     def describe(self) -> str:
@@ -432,8 +453,9 @@ class TemplateMix(Method):
         return (f"per-object mixture of templates {self.sed_paths[0]} and {self.sed_paths[1]} "
                 f"matching the colour {p} - {q}, by synthetic photometry (Hogg et al. 2002 "
                 f"eq. 9), fluxes tabulated at {self.table.grid.n} redshifts on 0 <= z <= "
-                f"{self.z_max:g}; colours more than {self.clip_tolerance_mag:g} mag beyond "
-                f"both templates' get no K")
+                f"{self.z_max:g}; no K for colours more than {self.clip_tolerance_mag:g} mag "
+                f"beyond both templates' or where |dK/dcolour| > "
+                f"{self.max_colour_sensitivity:g}")
 
     def template_colours(self, z: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Synthetic colours m_p - m_q of templates A and B at each z (NaN outside the table)."""
@@ -488,9 +510,19 @@ class TemplateMix(Method):
             clipped[rows] = near
             outside[rows] = ~near
         w[~inside | missing | outside | degenerate] = np.nan
+        # dK/dc = (dK/dw) / (dc/dw) = (dF_R / F_R) / (dF_p / F_p - dF_q / F_q) at w.
+        (a_r, b_r) = fluxes["r"]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            d_r, d_p, d_q = b_r - a_r, b_p - a_p, b_q - a_q
+            sensitivity = (d_r / (a_r + w * d_r)) / (d_p / (a_p + w * d_p)
+                                                      - d_q / (a_q + w * d_q))
+            insensitive = np.isfinite(w) & ~(np.abs(sensitivity) <= self.max_colour_sensitivity)
+        w[insensitive] = np.nan
+        clipped &= ~insensitive
         return MixSolution(idx=idx, frac=frac, inside=inside, fluxes=fluxes, rho=rho, w=w,
-                           free=free & inside & ~missing, clipped=clipped, outside=outside,
-                           degenerate=degenerate, missing=missing)
+                           free=free & inside & ~missing & ~insensitive, clipped=clipped,
+                           outside=outside, degenerate=degenerate, missing=missing,
+                           insensitive=insensitive, sensitivity=sensitivity)
 
     def _solution(self, z: np.ndarray, colour: np.ndarray) -> MixSolution:
         """:meth:`solve`, reusing this thread's last solution for the very same arrays (the
@@ -521,7 +553,7 @@ class TemplateMix(Method):
         k[~np.isfinite(k)] = np.nan
         return k, {OUTSIDE_Z: np.isfinite(z) & ~sol.inside, COLOUR_MISSING: sol.missing,
                    COLOUR_CLIPPED: sol.clipped, COLOUR_OUTSIDE: sol.outside,
-                   COLOUR_DEGENERATE: sol.degenerate}
+                   COLOUR_DEGENERATE: sol.degenerate, COLOUR_INSENSITIVE: sol.insensitive}
 
     def derivatives(self, z, colour):
         """dK/dz and dK/dc in closed form from the tabulated fluxes and their z-derivatives:
