@@ -100,13 +100,15 @@ def recover(table: pa.Table, cases: list[Case], cosmology: str = "planck2018") -
     cosmo = preset(cosmology)
     col = {n: table.column(n).to_numpy(zero_copy_only=False) for n in
            ("z", "z_type", "true_sed", "true_absolute_magnitude_amber_mag", "mag_amber",
-            "mag_crimson", "mag_infrared")}
+            "mag_crimson", "mag_infrared", "magerr_amber", "magerr_infrared")}
     z = col["z"].astype(np.float64)
     with np.errstate(invalid="ignore"):
         usable = np.isfinite(z) & (z > 0)
     z = np.where(usable, z, np.nan)
     mu = np.asarray(cosmo.distance_modulus_mag(z), dtype=np.float64)
     colour = col["mag_amber"].astype(np.float64) - col["mag_infrared"].astype(np.float64)
+    colour_err = np.hypot(col["magerr_amber"].astype(np.float64),
+                          col["magerr_infrared"].astype(np.float64))
     out = {"z": z, "z_type": col["z_type"].astype(str), "sed": col["true_sed"].astype(str),
            "usable": usable, "cases": {}}
     truth = col["true_absolute_magnitude_amber_mag"]
@@ -116,7 +118,10 @@ def recover(table: pa.Table, cases: list[Case], cosmology: str = "planck2018") -
         refused = np.zeros(z.size, dtype=bool)
         for sed, method in case.methods.items():
             rows = np.ones(z.size, dtype=bool) if sed == "*" else out["sed"] == sed
-            kk, flags = method.evaluate(z[rows], colour[rows])
+            if isinstance(method, TemplateMix):  # as the annotator: with the colour's error
+                kk, flags = method.evaluate(z[rows], colour[rows], colour_err[rows])
+            else:
+                kk, flags = method.evaluate(z[rows], colour[rows])
             k[rows] = kk
             null_flags = [f for f in flags if f != "colour_clipped"]
             refused[rows] = np.any([flags[f] for f in null_flags], axis=0) & ~np.isfinite(kk)

@@ -48,7 +48,7 @@ METHOD_KEYS = {
     "power_law_colour": ("method", "colour", "alpha_range", "z_max"),
     "template": ("method", "sed", "z_max"),
     "template_mix": ("method", "seds", "colour", "z_max", "clip_tolerance_mag",
-                     "max_colour_sensitivity"),
+                     "clip_tolerance_sigma", "max_colour_sensitivity"),
     "polynomial": ("method", "coefficients", "colour", "z_max", "colour_range"),
 }
 OPTIONS = ("tolerance_mag", "use_redshift_error")
@@ -220,7 +220,13 @@ class KCorrection(Annotator):
             if method.colour is not None:
                 p, q = method.colour
                 colour = mags[p] - mags[q]
-            k, flags = method.evaluate(z, colour)
+            if isinstance(method, TemplateMix):
+                # the colour's own error widens the mixture's clipping tolerance
+                p, q = method.colour
+                colour_err = np.hypot(errs[p], errs[q]) if p in errs and q in errs else None
+                k, flags = method.evaluate(z, colour, colour_err)
+            else:
+                k, flags = method.evaluate(z, colour)
             for suffix, mask in flags.items():
                 if mask.any():  # the core's flag bookkeeping costs a pass; skip empty masks
                     batch.flag(f"kcorrection_{b.name}_{suffix}", mask)
@@ -341,7 +347,8 @@ def _method(setup, band: BandSpec, spec, bands: dict[str, BandSpec], tolerance: 
                           f"{', '.join(METHOD_KEYS[kind])})")
     for required in METHOD_KEYS[kind][1:]:
         optional = required in ("z_max", "alpha_range", "colour_range",
-                                "clip_tolerance_mag", "max_colour_sensitivity") and not (
+                                "clip_tolerance_mag", "clip_tolerance_sigma",
+                                "max_colour_sensitivity") and not (
             kind == "polynomial" and required == "z_max")
         if required not in spec and not optional:
             raise setup.error(f"{key}.{required}", f"missing (method {kind!r} needs "
@@ -426,8 +433,15 @@ def _method(setup, band: BandSpec, spec, bands: dict[str, BandSpec], tolerance: 
         if sensitivity <= 0:
             raise setup.error(f"{key}.max_colour_sensitivity", f"expected > 0, got "
                               f"{sensitivity:g}")
+    clip_sigma = 2.0
+    if "clip_tolerance_sigma" in spec:
+        clip_sigma = _number(setup, f"{key}.clip_tolerance_sigma", spec["clip_tolerance_sigma"],
+                             what="a number of standard deviations, >= 0")
+        if clip_sigma < 0:
+            raise setup.error(f"{key}.clip_tolerance_sigma", f"expected >= 0, got "
+                              f"{clip_sigma:g}")
     return TemplateMix.build(seds, band.filter, rest, colour, colour_filters, z_max, key,
-                             tolerance, clip, sensitivity)
+                             tolerance, clip, sensitivity, clip_sigma)
 
 
 def _coefficients(setup, key: str, value) -> np.ndarray:

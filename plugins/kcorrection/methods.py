@@ -344,9 +344,11 @@ class TemplateMix(Method):
     for colours beyond the templates'):
 
     * between them: w solved, K of the mixture;
-    * beyond the nearer template's colour by at most ``clip_tolerance_mag``: that template's
-      K, flagged ``colour_clipped`` (the value is kept: photometric noise alone scatters about
-      half of the objects of the bluest and of the reddest type a little beyond them);
+    * beyond the nearer template's colour by at most the tolerance -- ``clip_tolerance_mag``,
+      or ``clip_tolerance_sigma`` times the colour's own error when the annotator has the
+      magnitude errors, whichever is larger: that template's K, flagged ``colour_clipped``
+      (the value is kept: photometric noise alone scatters about half of the objects of the
+      bluest and of the reddest type a little beyond them);
     * beyond it by more: null K and absolute magnitude, flag ``colour_outside_range`` (no
       extrapolated or end-member K is ever returned unflagged);
     * where the colour barely moves with w while K does, i.e. ``|dK/dc| =
@@ -369,6 +371,7 @@ class TemplateMix(Method):
     #: A colour this close (mag) to a template's is taken as that template's, unflagged.
     on_template_mag: float = 1e-4
     max_colour_sensitivity: float = DEFAULT_MAX_COLOUR_SENSITIVITY
+    clip_tolerance_sigma: float = 2.0
     kind: ClassVar[str] = "template_mix"
 
     def __post_init__(self) -> None:
@@ -388,8 +391,8 @@ class TemplateMix(Method):
     def build(cls, seds: tuple[Curve, Curve], filt: Filter, rest: Filter,
               colour: tuple[str, str], colour_filters: tuple[Filter, Filter], z_max: float,
               key: str, tolerance: float, clip_tolerance_mag: float = 0.1,
-              max_colour_sensitivity: float = DEFAULT_MAX_COLOUR_SENSITIVITY
-              ) -> "TemplateMix":
+              max_colour_sensitivity: float = DEFAULT_MAX_COLOUR_SENSITIVITY,
+              clip_tolerance_sigma: float = 2.0) -> "TemplateMix":
         # The band is often one of the colour's bands (r with g - r): tabulate each distinct
         # filter once.
         distinct: list[Filter] = []
@@ -424,19 +427,21 @@ class TemplateMix(Method):
         return cls(colour=colour, table=table, columns=tuple(columns),
                    sed_paths=(seds[0].path, seds[1].path), z_max=z_max,
                    clip_tolerance_mag=clip_tolerance_mag,
-                   max_colour_sensitivity=max_colour_sensitivity)
+                   max_colour_sensitivity=max_colour_sensitivity,
+                   clip_tolerance_sigma=clip_tolerance_sigma)
 
     def flag_suffixes(self):
         out = super().flag_suffixes()
         p, q = self.colour
         out[COLOUR_CLIPPED] = (
             f"The colour {p} - {q} lies beyond both templates' colours at this redshift, by "
-            f"at most {self.clip_tolerance_mag:g} mag: the K-correction (kept) is that of the "
-            f"nearer template.")
+            f"at most {self.clip_tolerance_mag:g} mag or {self.clip_tolerance_sigma:g} times "
+            f"its error: the K-correction (kept) is that of the nearer template.")
         out[COLOUR_OUTSIDE] = (
-            f"The colour {p} - {q} lies more than {self.clip_tolerance_mag:g} mag beyond the "
-            f"colours of both templates at this redshift, so no mixture of them has it: null "
-            f"K-correction and absolute magnitude.")
+            f"The colour {p} - {q} lies beyond the colours of both templates at this "
+            f"redshift by more than {self.clip_tolerance_mag:g} mag and more than "
+            f"{self.clip_tolerance_sigma:g} times its error, so no mixture of them has it: "
+            f"null K-correction and absolute magnitude.")
         out[COLOUR_DEGENERATE] = (
             f"Both templates have the same colour {p} - {q} at this redshift (within "
             f"{self.degenerate_mag:g} mag), so the colour cannot choose a mixture: null "
@@ -468,8 +473,11 @@ class TemplateMix(Method):
         c_b[~sol.inside] = np.nan
         return c_a, c_b
 
-    def solve(self, z: np.ndarray, colour: np.ndarray) -> MixSolution:
-        """The mixture weight of every row and why it was or was not found."""
+    def solve(self, z: np.ndarray, colour: np.ndarray,
+              colour_err: np.ndarray | None = None) -> MixSolution:
+        """The mixture weight of every row and why it was or was not found (``colour_err``,
+        when given, widens the clipping tolerance of each row to ``clip_tolerance_sigma``
+        times it)."""
         idx, frac, inside = self.table.grid.locate(z)
         t = self.table
         r, p, q = self.columns
@@ -506,7 +514,11 @@ class TemplateMix(Method):
             to_b = db < da
             w[rows] = np.where(to_b, 1.0, 0.0)
             gap = np.minimum(da, db) * (2.5 / LN10)
-            near = gap <= self.clip_tolerance_mag
+            tol = np.full(rows.size, self.clip_tolerance_mag)
+            if colour_err is not None:
+                with np.errstate(invalid="ignore"):
+                    tol = np.fmax(tol, self.clip_tolerance_sigma * colour_err[rows])
+            near = gap <= tol
             clipped[rows] = near
             outside[rows] = ~near
         w[~inside | missing | outside | degenerate] = np.nan
@@ -524,14 +536,16 @@ class TemplateMix(Method):
                            outside=outside, degenerate=degenerate, missing=missing,
                            insensitive=insensitive, sensitivity=sensitivity)
 
-    def _solution(self, z: np.ndarray, colour: np.ndarray) -> MixSolution:
+    def _solution(self, z: np.ndarray, colour: np.ndarray,
+                  colour_err: np.ndarray | None = None) -> MixSolution:
         """:meth:`solve`, reusing this thread's last solution for the very same arrays (the
         annotator calls :meth:`evaluate` then :meth:`derivatives` on one batch)."""
         last = getattr(self._last, "value", None)
-        if last is not None and last[0] is z and last[1] is colour:
-            return last[2]
-        sol = self.solve(z, colour)
-        self._last.value = (z, colour, sol)
+        if last is not None and last[0] is z and last[1] is colour and \
+                (colour_err is None or last[2] is colour_err):
+            return last[3]
+        sol = self.solve(z, colour, colour_err)
+        self._last.value = (z, colour, colour_err, sol)
         return sol
 
     def weights(self, z: np.ndarray, colour: np.ndarray):
@@ -542,8 +556,8 @@ class TemplateMix(Method):
         a_r, b_r = sol.fluxes["r"]
         return sol.w, sol.clipped, sol.inside, a_r, b_r
 
-    def evaluate(self, z, colour):
-        sol = self._solution(z, colour)
+    def evaluate(self, z, colour, colour_err=None):
+        sol = self._solution(z, colour, colour_err)
         a_r, b_r = sol.fluxes["r"]
         # Both templates have unit rest-frame flux in Q, so the mixture's is 1 and
         # K = m_R(z) - m_Q(0) = -2.5 log10 of its observed maggies (which already carry the
