@@ -161,8 +161,10 @@ def summarise(result: dict, cases: list[Case]) -> list[dict]:
                         sel = sel_base & (z >= lo) & (z < hi)
                     if not sel.any():
                         continue
-                    valid = s in case.valid_types and case.valid_z[0] <= lo \
-                        and hi <= case.valid_z[1]
+                    # claims (and bounds) for spectroscopic redshifts only: a wrong photometric
+                    # redshift misleads every K method alike and none can detect it
+                    valid = z_type == "spec" and s in case.valid_types \
+                        and case.valid_z[0] <= lo and hi <= case.valid_z[1]
                     row = {"case": case.name, "z_type": z_type, "sed": s, "z_lo": lo,
                            "z_hi": hi, "claimed_valid": bool(valid)}
                     row.update(_stats(data["dm"][sel], data["refused"][sel]))

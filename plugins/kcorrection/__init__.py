@@ -31,7 +31,7 @@ from annotator import Annotator, ColumnSpec, hookimpl
 
 from .._redshift import REDSHIFT_HINTS
 from .methods import (
-    DEFAULT_MAX_COLOUR_SENSITIVITY, LN10, Method, Polynomial, PowerLaw, PowerLawFromColour, Template,
+    DEFAULT_ASSUMED_COLOUR_ERROR_MAG, DEFAULT_MAX_K_SPREAD_MAG, LN10, Method, Polynomial, PowerLaw, PowerLawFromColour, Template,
     TemplateMix,
 )
 from .tables import (
@@ -48,7 +48,8 @@ METHOD_KEYS = {
     "power_law_colour": ("method", "colour", "alpha_range", "z_max"),
     "template": ("method", "sed", "z_max"),
     "template_mix": ("method", "seds", "colour", "z_max", "clip_tolerance_mag",
-                     "clip_tolerance_sigma", "max_colour_sensitivity"),
+                     "clip_tolerance_sigma", "max_kcorrection_spread_mag",
+                     "assumed_colour_error_mag"),
     "polynomial": ("method", "coefficients", "colour", "z_max", "colour_range"),
 }
 OPTIONS = ("tolerance_mag", "use_redshift_error")
@@ -348,7 +349,8 @@ def _method(setup, band: BandSpec, spec, bands: dict[str, BandSpec], tolerance: 
     for required in METHOD_KEYS[kind][1:]:
         optional = required in ("z_max", "alpha_range", "colour_range",
                                 "clip_tolerance_mag", "clip_tolerance_sigma",
-                                "max_colour_sensitivity") and not (
+                                "max_kcorrection_spread_mag",
+                                "assumed_colour_error_mag") and not (
             kind == "polynomial" and required == "z_max")
         if required not in spec and not optional:
             raise setup.error(f"{key}.{required}", f"missing (method {kind!r} needs "
@@ -425,14 +427,20 @@ def _method(setup, band: BandSpec, spec, bands: dict[str, BandSpec], tolerance: 
                        what="a colour difference in mag, >= 0")
         if clip < 0:
             raise setup.error(f"{key}.clip_tolerance_mag", f"expected >= 0, got {clip:g}")
-    sensitivity = DEFAULT_MAX_COLOUR_SENSITIVITY
-    if "max_colour_sensitivity" in spec:
-        sensitivity = _number(setup, f"{key}.max_colour_sensitivity",
-                              spec["max_colour_sensitivity"],
-                              what="a bound on |dK/dcolour| in mag per mag, > 0")
-        if sensitivity <= 0:
-            raise setup.error(f"{key}.max_colour_sensitivity", f"expected > 0, got "
-                              f"{sensitivity:g}")
+    spread = DEFAULT_MAX_K_SPREAD_MAG
+    if "max_kcorrection_spread_mag" in spec:
+        spread = _number(setup, f"{key}.max_kcorrection_spread_mag",
+                         spec["max_kcorrection_spread_mag"], what="a magnitude difference > 0")
+        if spread <= 0:
+            raise setup.error(f"{key}.max_kcorrection_spread_mag", f"expected > 0, got "
+                              f"{spread:g}")
+    assumed = DEFAULT_ASSUMED_COLOUR_ERROR_MAG
+    if "assumed_colour_error_mag" in spec:
+        assumed = _number(setup, f"{key}.assumed_colour_error_mag",
+                          spec["assumed_colour_error_mag"], what="a colour error in mag, >= 0")
+        if assumed < 0:
+            raise setup.error(f"{key}.assumed_colour_error_mag", f"expected >= 0, got "
+                              f"{assumed:g}")
     clip_sigma = 2.0
     if "clip_tolerance_sigma" in spec:
         clip_sigma = _number(setup, f"{key}.clip_tolerance_sigma", spec["clip_tolerance_sigma"],
@@ -441,7 +449,7 @@ def _method(setup, band: BandSpec, spec, bands: dict[str, BandSpec], tolerance: 
             raise setup.error(f"{key}.clip_tolerance_sigma", f"expected >= 0, got "
                               f"{clip_sigma:g}")
     return TemplateMix.build(seds, band.filter, rest, colour, colour_filters, z_max, key,
-                             tolerance, clip, sensitivity, clip_sigma)
+                             tolerance, clip, spread, clip_sigma, assumed)
 
 
 def _coefficients(setup, key: str, value) -> np.ndarray:

@@ -39,8 +39,10 @@ COLOUR_OUTSIDE = "colour_outside_range"
 COLOUR_CLIPPED = "colour_clipped"
 COLOUR_DEGENERATE = "colour_degenerate"
 COLOUR_INSENSITIVE = "colour_insensitive"
-#: Default bound on |dK/dcolour| of a template mixture (mag of K per mag of colour).
-DEFAULT_MAX_COLOUR_SENSITIVITY = 5.0
+#: Default bound on the spread of a template mixture's K over the colour's +-1 sigma (mag).
+DEFAULT_MAX_K_SPREAD_MAG = 0.5
+#: The colour error assumed when the magnitude errors are not known (mag).
+DEFAULT_ASSUMED_COLOUR_ERROR_MAG = 0.05
 
 
 def _mag_error(guess: np.ndarray, exact: np.ndarray) -> np.ndarray:
@@ -318,8 +320,9 @@ class MixSolution:
     clipped: np.ndarray  # beyond a template's colour by <= clip_tolerance_mag: its K
     outside: np.ndarray  # beyond by more: null K
     degenerate: np.ndarray  # both templates have the same colour here: null K
-    insensitive: np.ndarray  # |dK/dc| above the bound: the colour cannot fix K; null K
+    insensitive: np.ndarray  # K spread over the colour's +-1 sigma above the bound; null K
     sensitivity: np.ndarray  # dK/dc at the mixture found (NaN where there is none)
+    spread: np.ndarray  # |K(c + sigma) - K(c - sigma)| (mag)
     missing: np.ndarray  # no colour
 
 
@@ -351,13 +354,15 @@ class TemplateMix(Method):
       bluest and of the reddest type a little beyond them);
     * beyond it by more: null K and absolute magnitude, flag ``colour_outside_range`` (no
       extrapolated or end-member K is ever returned unflagged);
-    * where the colour barely moves with w while K does, i.e. ``|dK/dc| =
-      |(dF_R / F_R) / (dF_p / F_p - dF_q / F_q)|`` at the mixture found exceeds
-      ``max_colour_sensitivity`` (mag of K per mag of colour), a colour error of a few
-      hundredths of a magnitude would move K by tenths or more: null K, flag
-      ``colour_insensitive``. (With the demo survey's early and star-forming templates and
-      amber - infrared this happens near the star-forming end beyond z ~ 1.3, where the
-      early template adds infrared light but almost no observed amber light.)
+    * where the colour cannot fix K: the K of the mixtures matching the colour plus and
+      minus its error (the annotator's magnitude errors in quadrature, else
+      ``assumed_colour_error_mag``; each clamped to the templates' range) differ by more
+      than ``max_kcorrection_spread_mag``: null K, flag ``colour_insensitive``. The local
+      slope ``dK/dc = (dF_R / F_R) / (dF_p / F_p - dF_q / F_q)`` shows why: with the demo
+      survey's early and star-forming templates and amber - infrared it reaches 30 mag per
+      mag near the star-forming end at z ~ 2, where the early template adds infrared light
+      but almost no observed amber light, so a colour error of a tenth of a magnitude moves
+      K by magnitudes.
     """
 
     colour: tuple[str, str]
@@ -370,7 +375,8 @@ class TemplateMix(Method):
     degenerate_mag: float = 1e-3
     #: A colour this close (mag) to a template's is taken as that template's, unflagged.
     on_template_mag: float = 1e-4
-    max_colour_sensitivity: float = DEFAULT_MAX_COLOUR_SENSITIVITY
+    max_k_spread_mag: float = DEFAULT_MAX_K_SPREAD_MAG
+    assumed_colour_error_mag: float = DEFAULT_ASSUMED_COLOUR_ERROR_MAG
     clip_tolerance_sigma: float = 2.0
     kind: ClassVar[str] = "template_mix"
 
@@ -391,8 +397,10 @@ class TemplateMix(Method):
     def build(cls, seds: tuple[Curve, Curve], filt: Filter, rest: Filter,
               colour: tuple[str, str], colour_filters: tuple[Filter, Filter], z_max: float,
               key: str, tolerance: float, clip_tolerance_mag: float = 0.1,
-              max_colour_sensitivity: float = DEFAULT_MAX_COLOUR_SENSITIVITY,
-              clip_tolerance_sigma: float = 2.0) -> "TemplateMix":
+              max_k_spread_mag: float = DEFAULT_MAX_K_SPREAD_MAG,
+              clip_tolerance_sigma: float = 2.0,
+              assumed_colour_error_mag: float = DEFAULT_ASSUMED_COLOUR_ERROR_MAG
+              ) -> "TemplateMix":
         # The band is often one of the colour's bands (r with g - r): tabulate each distinct
         # filter once.
         distinct: list[Filter] = []
@@ -427,8 +435,9 @@ class TemplateMix(Method):
         return cls(colour=colour, table=table, columns=tuple(columns),
                    sed_paths=(seds[0].path, seds[1].path), z_max=z_max,
                    clip_tolerance_mag=clip_tolerance_mag,
-                   max_colour_sensitivity=max_colour_sensitivity,
-                   clip_tolerance_sigma=clip_tolerance_sigma)
+                   max_k_spread_mag=max_k_spread_mag,
+                   clip_tolerance_sigma=clip_tolerance_sigma,
+                   assumed_colour_error_mag=assumed_colour_error_mag)
 
     def flag_suffixes(self):
         out = super().flag_suffixes()
@@ -447,10 +456,10 @@ class TemplateMix(Method):
             f"{self.degenerate_mag:g} mag), so the colour cannot choose a mixture: null "
             f"K-correction and absolute magnitude.")
         out[COLOUR_INSENSITIVE] = (
-            f"At this redshift and colour the mixture's K-correction changes by more than "
-            f"{self.max_colour_sensitivity:g} mag per mag of {p} - {q} (the colour hardly "
-            f"depends on the mixture while K does), so the colour cannot fix K: null "
-            f"K-correction and absolute magnitude.")
+            f"At this redshift the K-corrections of the mixtures matching {p} - {q} plus and "
+            f"minus its error (or {self.assumed_colour_error_mag:g} mag) differ by more than "
+            f"{self.max_k_spread_mag:g} mag (the colour hardly depends on the mixture while "
+            f"K does), so the colour cannot fix K: null K-correction and absolute magnitude.")
         return out
 
     def describe(self) -> str:
@@ -459,8 +468,8 @@ class TemplateMix(Method):
                 f"matching the colour {p} - {q}, by synthetic photometry (Hogg et al. 2002 "
                 f"eq. 9), fluxes tabulated at {self.table.grid.n} redshifts on 0 <= z <= "
                 f"{self.z_max:g}; no K for colours more than {self.clip_tolerance_mag:g} mag "
-                f"beyond both templates' or where |dK/dcolour| > "
-                f"{self.max_colour_sensitivity:g}")
+                f"beyond both templates' or where K over the colour's +-1 sigma spans more "
+                f"than {self.max_k_spread_mag:g} mag")
 
     def template_colours(self, z: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Synthetic colours m_p - m_q of templates A and B at each z (NaN outside the table)."""
@@ -528,13 +537,30 @@ class TemplateMix(Method):
             d_r, d_p, d_q = b_r - a_r, b_p - a_p, b_q - a_q
             sensitivity = (d_r / (a_r + w * d_r)) / (d_p / (a_p + w * d_p)
                                                       - d_q / (a_q + w * d_q))
-            insensitive = np.isfinite(w) & ~(np.abs(sensitivity) <= self.max_colour_sensitivity)
+            # K of the mixtures matching the colour -+ its error (weights clamped by colour)
+            sigma = np.full(z.shape, self.assumed_colour_error_mag)
+            if colour_err is not None:
+                sigma = np.where(np.isfinite(colour_err) & (colour_err >= 0), colour_err,
+                                 sigma)
+            shift = np.exp((0.4 * LN10) * sigma)
+
+            def k_at(rho_x):
+                a_x = a_p - rho_x * a_q
+                w_x = a_x / (a_x - (b_p - rho_x * b_q))
+                between = (rho_x >= lo) & (rho_x <= hi)
+                end = np.where(np.abs(np.log(rho_x / ra)) <= np.abs(np.log(rho_x / rb)), 0.0,
+                               1.0)
+                w_x = np.where(between, np.clip(w_x, 0.0, 1.0), end)
+                return -2.5 * np.log10(a_r + w_x * d_r)
+
+            spread = np.abs(k_at(rho * shift) - k_at(rho / shift))
+            insensitive = np.isfinite(w) & ~(spread <= self.max_k_spread_mag)
         w[insensitive] = np.nan
         clipped &= ~insensitive
         return MixSolution(idx=idx, frac=frac, inside=inside, fluxes=fluxes, rho=rho, w=w,
                            free=free & inside & ~missing & ~insensitive, clipped=clipped,
                            outside=outside, degenerate=degenerate, missing=missing,
-                           insensitive=insensitive, sensitivity=sensitivity)
+                           insensitive=insensitive, sensitivity=sensitivity, spread=spread)
 
     def _solution(self, z: np.ndarray, colour: np.ndarray,
                   colour_err: np.ndarray | None = None) -> MixSolution:

@@ -135,7 +135,7 @@ def test_template_mix_reproduces_a_mixed_object(tmp_path, curves):
         "r": _band("red", "mag_r", {"method": "template_mix",
                                     "seds": ["seds/early.csv", "seds/young.csv"],
                                     "colour": ["b", "r"], "z_max": 1.2,
-                                    "max_colour_sensitivity": 1e6}),
+                                    "max_kcorrection_spread_mag": 1e6}),
     }
     k = _method(configure(tmp_path, bands), "r")
     for wa, wb, z in ((0.3, 0.7, 0.25), (0.8, 0.2, 0.6), (0.05, 0.95, 1.1)):

@@ -37,11 +37,11 @@ def demo_sed(name: str) -> Curve:
 
 
 def demo_mix(clip: float = 0.1, z_max: float = 3.5, tolerance: float = 1e-4,
-             sensitivity: float = 5.0) -> TemplateMix:
+             spread: float = 0.5) -> TemplateMix:
     amber, infrared = demo_filter("amber"), demo_filter("infrared")
     return TemplateMix.build((demo_sed("early"), demo_sed("starforming")), amber, amber,
                              ("amber", "infrared"), (amber, infrared), z_max, "test",
-                             tolerance, clip, sensitivity)
+                             tolerance, clip, spread)
 
 
 def small_mix() -> TemplateMix:
@@ -80,11 +80,9 @@ def test_issue_case_blue_starforming_galaxy_at_z_2_24_is_not_given_the_early_k()
     # Issue 13: a spectroscopic star-forming galaxy at z = 2.24 with amber - infrared = 0.23,
     # bluer than the star-forming template (about 0.40 there), used to get the early
     # template's K = 6.44. It lies 0.17 mag beyond the star-forming colour: with the default
-    # tolerance (0.1 mag) it is refused (null, flagged); with a 0.2 mag tolerance it is
-    # placed on the star-forming template, where K hardly depends on the colour's
-    # neighbourhood no more: |dK/dc| ~ 30 there, so by default it is refused as
-    # colour_insensitive; with that bound lifted it gets the star-forming template's K
-    # (direct synthetic photometry), flagged colour_clipped.
+    # tolerance (0.1 mag) it is refused (null, flagged); with a 0.2 mag tolerance it gets
+    # the star-forming template's K (direct synthetic photometry), flagged colour_clipped
+    # (its colour -+ 0.05 mag lies beyond the star-forming colour too, so K is determined).
     c_sf, k_sf = _direct_colour_and_k(demo_sed("starforming"), 2.24)
     _, k_early = _direct_colour_and_k(demo_sed("early"), 2.24)
     assert 0.35 < c_sf < 0.45 and k_early > 6  # the case as the issue describes it
@@ -93,8 +91,6 @@ def test_issue_case_blue_starforming_galaxy_at_z_2_24_is_not_given_the_early_k()
     assert np.isnan(k[0]) and flags["colour_outside_range"][0]
     assert not flags["colour_clipped"][0]
     k, flags = demo_mix(clip=0.2).evaluate(z, c)
-    assert np.isnan(k[0]) and flags["colour_insensitive"][0]
-    k, flags = demo_mix(clip=0.2, sensitivity=1e6).evaluate(z, c)
     assert k[0] == pytest.approx(k_sf, abs=2e-4)
     assert flags["colour_clipped"][0] and not flags["colour_outside_range"][0]
 
@@ -102,7 +98,7 @@ def test_issue_case_blue_starforming_galaxy_at_z_2_24_is_not_given_the_early_k()
 def test_mixture_colour_is_monotonic_in_the_weight_at_every_redshift():
     # c(w) = -2.5 log10(F_p(w) / F_q(w)) with F linear in w: strictly monotonic between the
     # two templates' colours (closed form, see TemplateMix); checked on a grid of w and z.
-    mix = demo_mix(sensitivity=1e9)
+    mix = demo_mix(spread=1e9)
     z = np.linspace(0.0, 3.5, 141)
     sol = mix.solve(z, np.zeros_like(z))
     (a_p, b_p), (a_q, b_q) = sol.fluxes["p"], sol.fluxes["q"]
@@ -118,7 +114,7 @@ def test_mixture_colour_is_monotonic_in_the_weight_at_every_redshift():
 
 
 def test_mixture_refuses_outside_and_flags_every_clipped_row():
-    mix = demo_mix(sensitivity=1e9)
+    mix = demo_mix(spread=1e9)
     z = np.array([0.5, 1.5, 2.5, 3.2])
     c_a, c_b = mix.template_colours(z)
     lo, hi = np.minimum(c_a, c_b), np.maximum(c_a, c_b)
@@ -133,19 +129,25 @@ def test_mixture_refuses_outside_and_flags_every_clipped_row():
 
 
 def test_mixture_refuses_where_the_colour_cannot_fix_k():
-    # |dK/dc| = (dF_R / F_R) / (dF_p / F_p - dF_q / F_q) (closed form, TemplateMix); checked
-    # against a central difference of K in the colour (common practice), then the bound.
-    loose = demo_mix(sensitivity=1e9)
+    # dK/dc = (dF_R / F_R) / (dF_p / F_p - dF_q / F_q) (closed form, TemplateMix) against a
+    # central difference of K in the colour (common practice); then the refusal: K of the
+    # colour +- its error (here 0.1 mag) spanning more than 0.5 mag, from K evaluated there.
+    loose = demo_mix(spread=1e9)
     z = np.array([0.3, 0.8, 1.2, 2.24, 3.0])
     c_a, c_b = loose.template_colours(z)
     colour = c_b + 0.02 * (c_a - c_b)  # near the star-forming template's colour
     h = 1e-4
     fd = (loose.evaluate(z, colour + h)[0] - loose.evaluate(z, colour - h)[0]) / (2 * h)
-    sens = loose.solve(z, colour).sensitivity
-    np.testing.assert_allclose(sens, fd, rtol=1e-3)
-    k, flags = demo_mix().evaluate(z, colour)
-    expect = np.abs(fd) > 5.0
+    np.testing.assert_allclose(loose.solve(z, colour).sensitivity, fd, rtol=1e-3)
+    err = np.full(z.size, 0.1)
+    lo, hi = np.minimum(c_a, c_b), np.maximum(c_a, c_b)
+    k_plus = loose.evaluate(z, np.clip(colour + 0.1, lo, hi))[0]
+    k_minus = loose.evaluate(z, np.clip(colour - 0.1, lo, hi))[0]
+    expect = np.abs(k_plus - k_minus) > 0.5
     assert expect.tolist() == [False, False, False, True, True]
+    np.testing.assert_allclose(loose.solve(z, colour, err).spread, np.abs(k_plus - k_minus),
+                               atol=1e-6)
+    k, flags = demo_mix().evaluate(z, colour, err)
     assert flags["colour_insensitive"].tolist() == expect.tolist()
     assert np.isnan(k[expect]).all() and np.isfinite(k[~expect]).all()
 
