@@ -397,8 +397,8 @@ def absolute_magnitudes(z_sample: np.ndarray, bands: dict[str, np.ndarray],
             if len(ze):
                 ax.plot(ze, me, color="white", lw=3.2)
                 ax.plot(ze, me, color=BLACK, lw=1.5, ls="--", marker="o", ms=3)
-            ax.set_title(f"band {band}  ({int(clean.sum()):,} + {int(warn.sum()):,} flagged "
-                         f"sampled)", fontsize=9.5)
+            ax.set_title(f"band {band}  ({int(clean.sum()):,} + {int(warn.sum()):,} "
+                         f"flagged sampled)", fontsize=9)
             c = counts.get(band)
             if c is not None:
                 ax.text(0.02, 0.02, f"all rows: {c.given:,} values, {c.given_flagged:,} of "
@@ -422,12 +422,12 @@ def absolute_magnitudes(z_sample: np.ndarray, bands: dict[str, np.ndarray],
         from matplotlib.lines import Line2D
 
         handles = [Line2D([], [], ls="none", marker="o", ms=5, color=BLUE, alpha=0.6,
-                          label="unflagged objects (sample)")]
+                          label="unflagged (sample)")]
         if any_flagged:
             handles.append(Line2D([], [], ls="none", marker="^", ms=5, color=ORANGE,
-                                  alpha=0.8, label="value kept but flagged (sample)"))
+                                  alpha=0.8, label="kept but flagged (sample)"))
         handles.append(Line2D([], [], ls="--", marker="o", ms=3, lw=1.5, color=BLACK,
-                              label="faint edge: 98th percentile of unflagged M per z bin"))
+                              label="faint edge (98th percentile, unflagged)"))
         fig.legend(handles=handles, loc="outside lower center", ncol=min(3, len(handles)))
         return to_png(fig)
 
