@@ -243,6 +243,7 @@ class KCorrection(Annotator):
             if b.error_input:
                 out[f"absolute_magnitude_{b.name}_err_mag"] = self._error(
                     b, z, colour, errs, z_err, dmu_dz, absolute)
+            method.release()  # the weights kept for the error column are not needed now
         return out
 
     def _dmu_dz(self, z: np.ndarray) -> np.ndarray:

@@ -76,6 +76,9 @@ class Method:
     def describe(self) -> str:
         raise NotImplementedError
 
+    def release(self) -> None:
+        """Drop anything kept from the last batch (called by the annotator after each band)."""
+
     def evaluate(self, z: np.ndarray, colour: np.ndarray | None
                  ) -> tuple[np.ndarray, dict[str, np.ndarray]]:
         """K at each row (NaN where there is none) and the flag masks."""
@@ -573,6 +576,9 @@ class TemplateMix(Method):
         sol = self.solve(z, colour, colour_err)
         self._last.value = (z, colour, colour_err, sol)
         return sol
+
+    def release(self) -> None:
+        self._last.value = None
 
     def weights(self, z: np.ndarray, colour: np.ndarray):
         """Mixture weight w of template B per row (NaN where refused), the rows flagged
