@@ -18,6 +18,7 @@ SCRIPTS = [
     ("bench_kcorrection.py", []),
     ("bench_ktable_cache.py", []),
     ("bench_recovery.py", []),
+    ("bench_luminosity_function.py", []),
     ("bench_uncertainty.py", []),
     ("bench_sql.py", []),
     ("bench_dask.py", []),
