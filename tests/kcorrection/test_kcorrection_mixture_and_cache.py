@@ -139,6 +139,8 @@ def test_mixture_refuses_where_the_colour_cannot_fix_k():
     h = 1e-4
     fd = (loose.evaluate(z, colour + h)[0] - loose.evaluate(z, colour - h)[0]) / (2 * h)
     np.testing.assert_allclose(loose.solve(z, colour).sensitivity, fd, rtol=1e-3)
+    # below 1 mag of K per mag of colour at z = 0.3, above 10 near z = 2.24 (docs)
+    assert abs(fd[0]) < 1 and abs(fd[3]) > 10
     err = np.full(z.size, 0.1)
     lo, hi = np.minimum(c_a, c_b), np.maximum(c_a, c_b)
     k_plus = loose.evaluate(z, np.clip(colour + 0.1, lo, hi))[0]
