@@ -402,7 +402,7 @@ class TemplateMix(Method):
       ``assumed_colour_error_mag``; each clamped to the templates' range) differ by more
       than ``max_kcorrection_spread_mag``: null K, flag ``colour_insensitive``. The local
       slope ``dK/dc = (dF_R / F_R) / (dF_p / F_p - dF_q / F_q)`` shows why: with the demo
-      survey's early and star-forming templates and amber - infrared it reaches 30 mag per
+      survey's early and star-forming templates and amber - infrared it exceeds 10 mag per
       mag near the star-forming end at z ~ 2, where the early template adds infrared light
       but almost no observed amber light, so a colour error of a tenth of a magnitude moves
       K by magnitudes.
