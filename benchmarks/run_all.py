@@ -22,6 +22,7 @@ SCRIPTS = [
     ("bench_uncertainty.py", []),
     ("bench_sql.py", []),
     ("bench_dask.py", []),
+    ("bench_csv.py", []),
 ]
 
 
