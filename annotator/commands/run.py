@@ -145,6 +145,14 @@ def main(args) -> int:
         chunk_rows=args.chunk_rows,
         overwrite=args.overwrite,
     )
+    if job.output_dir is not None and not (args.resume or job.overwrite or args.dry_run):
+        from ..engines.common import interrupted_run
+
+        stopped = interrupted_run(job.output_dir, job.fingerprint())
+        if stopped is not None and stopped[0]:
+            raise OutputError(f"output {job.output_dir}: holds an interrupted run of this job "
+                              f"({stopped[1]} parts committed); continue it with: "
+                              f"{resume_command(args)}  (or start again with --overwrite)")
     plan = build_plan(job)
     if not args.config or not job.columns:
         for logical, (col, how) in plan.column_mapping.items():
@@ -164,14 +172,6 @@ def main(args) -> int:
     engine_options = {}
     if args.engine == "dask":
         engine_options = {"scheduler": args.scheduler, "workers": args.workers}
-    if not args.resume and not job.overwrite:
-        from ..engines.common import interrupted_run
-
-        stopped = interrupted_run(job.output_dir, job.fingerprint())
-        if stopped is not None and stopped[0]:
-            raise OutputError(f"output {job.output_dir}: holds an interrupted run of this job "
-                              f"({stopped[1]} parts committed); continue it with: "
-                              f"{resume_command(args)}  (or start again with --overwrite)")
     reporter = _Reporter(plan.estimated_rows, args.quiet)
     with _Interruptions() as stops:
         try:
@@ -180,8 +180,8 @@ def main(args) -> int:
                                 engine_options=engine_options)
         except KeyboardInterrupt as exc:
             reporter.close()
-            how = f"{exc.args[0] if exc.args else 'SIGINT'} received again" \
-                if stops.received else "interrupted"
+            second = exc.args[0] if exc.args else "SIGINT"
+            how = f"{second} received while stopping" if stops.received else "interrupted"
             print(_stopped_message(args, job.output_dir, f"{how}: the part in progress was "
                                    f"abandoned"), file=sys.stderr)
             return stops.exit_code
