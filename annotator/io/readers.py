@@ -60,6 +60,10 @@ class Chunk:
     index: int
     table: pa.Table
     rejected: list[dict] = field(default_factory=list)
+    # Progress (issue 16): bytes of the source file consumed once this chunk was read -- of the
+    # compressed file for .gz, so a CSV.gz run shows a percentage and an ETA. None when the
+    # reader does not tell; the local engine then estimates it from the row count.
+    bytes_read: int | None = None
 
     @property
     def rows_read(self) -> int:
@@ -184,12 +188,19 @@ def _open_text(path: Path):
     return raw
 
 
-def _iter_line_blocks(path: Path, block_bytes: int) -> Iterator[bytes]:
-    """Blocks of whole lines (each ends with a newline, except perhaps the last)."""
+def _iter_line_blocks(path: Path, block_bytes: int, where: list | None = None
+                      ) -> Iterator[bytes]:
+    """Blocks of whole lines (each ends with a newline, except perhaps the last).
+
+    ``where``: if given, ``where[0]`` is kept at the bytes of the file read so far (of the
+    compressed file for .gz), for progress.
+    """
     with _open_text(path) as fh:
         tail = b""
         while True:
             data = fh.read(block_bytes)
+            if where is not None:  # progress: position in the file on disk
+                where[0] = getattr(fh, "fileobj", fh).tell()
             if not data:
                 if tail:
                     yield tail
@@ -379,8 +390,9 @@ class CsvReader:
         pending_rejected: list[dict] = []
         line = 1
         first = True
+        where = [0]  # progress: bytes of the file read so far (Chunk.bytes_read)
         try:
-            for block in _iter_line_blocks(self.source.path, self.block_bytes):
+            for block in _iter_line_blocks(self.source.path, self.block_bytes, where):
                 if first:
                     header_end = block.find(b"\n") + 1
                     block = block[header_end:]
@@ -390,6 +402,9 @@ class CsvReader:
                     continue
                 n_lines = block.count(b"\n") + (0 if block.endswith(b"\n") else 1)
                 table, rejected = self._parse_block(block, line, target)
+                # progress: file bytes per row of this block, to place a chunk ending inside it
+                per_row = (where[0] - (where[1] if len(where) > 1 else 0)) / max(n_lines, 1)
+                where[1:] = [where[0]]
                 line += n_lines
                 pending.append(table)
                 pending_rows += table.num_rows
@@ -398,7 +413,8 @@ class CsvReader:
                     whole = pa.concat_tables(pending)
                     head, rest = whole.slice(0, chunk_rows), whole.slice(chunk_rows)
                     if index >= start_chunk:
-                        yield Chunk(self.source, index, head.combine_chunks(), pending_rejected)
+                        yield Chunk(self.source, index, head.combine_chunks(), pending_rejected,
+                                    bytes_read=int(where[0] - rest.num_rows * per_row))
                     pending_rejected = []
                     index += 1
                     pending, pending_rows = ([rest] if rest.num_rows else []), rest.num_rows
@@ -409,7 +425,8 @@ class CsvReader:
                 from exc
         if (pending_rows or pending_rejected) and index >= start_chunk:
             whole = pa.concat_tables(pending) if pending else target.empty_table()
-            yield Chunk(self.source, index, whole.combine_chunks(), pending_rejected)
+            yield Chunk(self.source, index, whole.combine_chunks(), pending_rejected,
+                        bytes_read=self.source.size_bytes)
 
 
 def _row_values(table: pa.Table, i: int) -> list:
