@@ -130,3 +130,20 @@ def test_query_format_is_identical_on_stdout_and_in_a_file(capsys, tmp_path, ann
 def test_parquet_without_a_file_is_refused_truthfully(capsys, annotated):
     rc, _, err = _run(capsys, "query", annotated, "SELECT 1", "--format", "parquet")
     assert rc == 2 and "terminal" not in err and "--to FILE.parquet" in err
+
+
+def test_a_folder_mixing_tables_of_different_shapes_names_the_files(capsys, tmp_path,
+                                                                    catalogue_parquet):
+    import shutil
+
+    folder = tmp_path / "drop"
+    (folder / "filters").mkdir(parents=True)
+    shutil.copy(catalogue_parquet, folder / "catalogue.parquet")
+    for band in ("blue", "red"):
+        (folder / "filters" / f"{band}.csv").write_text("wavelength_angstrom,response\n1,0\n")
+    rc, _, err = _run(capsys, "run", folder, "--out", tmp_path / "o")
+    assert rc == 2 and err.count("\n") == 1
+    assert "2 different shapes" in err
+    assert "catalogue.parquet [objid, ra, dec, z, … (8 columns)]" in err
+    assert "filters/blue.csv, filters/red.csv [wavelength_angstrom, response]" in err
+    assert not (tmp_path / "o").exists()
