@@ -21,6 +21,7 @@ import os
 import re
 import shutil
 import tempfile
+import threading
 from collections.abc import Iterable, Mapping
 from pathlib import Path
 
@@ -202,7 +203,16 @@ def _to_arrow(data: np.ndarray, null: np.ndarray | None, boolean: bool) -> pa.Ar
     return pa.Array.from_buffers(typ, n, [_bitmap(~null), values], null_count=int(null.sum()))
 
 
-def arrow_udf(fn: SqlFunction):
+# DuckDB calls a Python function from each of its threads, one vector (2 048 rows) at a time.
+# The interpreter lock lets only one run at once anyway, but without this lock two calls
+# interleave: every numpy operation inside releases and re-takes the interpreter lock, and the
+# two threads hand it back and forth (measured: 2 threads ran the SQL functions at about half
+# the speed of 1). Holding this lock for a whole call keeps the other DuckDB thread waiting
+# outside Python, free to scan and decode Parquet; benchmarks/bench_sql.py measures both.
+_ONE_PYTHON_CALL_AT_A_TIME = threading.Lock()
+
+
+def arrow_udf(fn: SqlFunction, *, one_call_at_a_time: bool = True):
     """Wrap a numpy function as a DuckDB Arrow UDF (one call per vector of rows).
 
     NULL out where the function returns NaN (or masks the value); a boolean result is also
@@ -211,6 +221,12 @@ def arrow_udf(fn: SqlFunction):
     boolean = fn.return_type.upper() == "BOOLEAN"
 
     def udf(*cols):
+        if not one_call_at_a_time:  # only for benchmarks/bench_sql.py's comparison
+            return evaluate(cols)
+        with _ONE_PYTHON_CALL_AT_A_TIME:
+            return evaluate(cols)
+
+    def evaluate(cols):
         args = [_as_float(c) for c in cols]
         n = len(args[0]) if args else 1
         with np.errstate(all="ignore"):
