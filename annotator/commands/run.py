@@ -72,7 +72,7 @@ class _Reporter:
         self.total = total
         self.use_bar = not quiet and _terminal_columns(sys.stderr) > 0
         self.bar = None
-        self.last = 0.0
+        self.last: float | None = None
 
     def _postfix(self, p) -> str:
         return (f"{p.rows_done:,} rows, {p.parts_done} parts, {p.rows_per_second:,.0f} rows/s, "
@@ -95,7 +95,7 @@ class _Reporter:
             self.bar.refresh()
             return
         now = time.monotonic()
-        if now - self.last >= self.INTERVAL_S:
+        if self.last is None or now - self.last >= self.INTERVAL_S:  # the first at once
             self.last = now
             pct = f" ({100 * p.fraction:.0f} %)" if p.fraction is not None else ""
             print(f"annotator: {p.rows_done} rows{pct}, {p.parts_done} parts, "
