@@ -21,6 +21,7 @@ SCRIPTS = [
     ("bench_sql.py", []),
     ("bench_dask.py", []),
     ("bench_report.py", []),
+    ("bench_csv.py", []),
 ]
 
 
