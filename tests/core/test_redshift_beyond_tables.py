@@ -29,3 +29,21 @@ def test_redshift_beyond_tables_is_flagged(tmp_path):
     m = json.loads((out / "manifest.json").read_text())
     assert m["flags"]["counts"]["redshift_beyond_tables"] == 3
     assert m["rows_flagged"] == 6
+
+
+def test_crossing_age_beyond_the_tabulated_future_is_flagged(tmp_path):
+    # w0 = -0.36: the event horizon converges so slowly that objects at z < ~1e-5 cross
+    # it after the end of the tabulated future (x = ln a = 400): their crossing age is
+    # null, and the row says why (a known limit, docs/cosmology-accuracy.md)
+    z = [1e-6, 1e-4, 0.5]
+    pq.write_table(pa.table({"objid": [0, 1, 2], "z": z}), tmp_path / "c.parquet")
+    job = tmp_path / "job.toml"
+    job.write_text(f'[input]\npaths = ["{tmp_path / "c.parquet"}"]\n'
+                   f'[output]\ndir = "{tmp_path / "out"}"\n'
+                   '[cosmology]\nh0 = 70\nomega_m = 0.3\nw0 = -0.36\n')
+    assert main(["run", "--config", str(job), "--quiet"]) == 0
+    t = pa.concat_tables(pq.read_table(p) for p in sorted((tmp_path / "out").glob("part-*")))
+    assert t.column("annotation_flags").to_pylist() == [
+        "horizon_crossing_beyond_tables", "", ""]
+    cross = t.column("horizon_crossing_age_gyr").to_pylist()
+    assert cross[0] is None and cross[1] > 1e100 and cross[2] > 0
