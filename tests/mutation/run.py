@@ -72,7 +72,7 @@ def make_copy() -> tuple[Path, Path, dict]:
          "print(annotator.__file__); print(annotator_plugins.__file__)"],
         cwd=tree, env=env, capture_output=True, text=True)
     files = probe.stdout.split()
-    if probe.returncode or len(files) != 2 or not all(f.startswith(str(shim)) for f in files):
+    if probe.returncode or len(files) != 2 or not all(f.startswith(str(scratch)) for f in files):
         shutil.rmtree(scratch, ignore_errors=True)
         raise SystemExit("mutation: the scratch copy is not what the tests would import "
                          f"({probe.stdout.strip()} {probe.stderr.strip()})")
