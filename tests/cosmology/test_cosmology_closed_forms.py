@@ -1,4 +1,14 @@
-"""Closed-form cosmologies and the distance definitions of Hogg 1999."""
+"""Closed-form cosmologies (outside references) and the distance definitions of Hogg 1999
+(consistency checks, named so).
+
+Sources of the closed forms: Einstein-de Sitter, a ~ t^(2/3) (Einstein & de Sitter 1932,
+PNAS 18, 213; Weinberg 1972, Gravitation and Cosmology, ch. 15; Hogg 1999,
+arXiv:astro-ph/9905116, sec. 5); Lambda = 0 models: Mattig 1958 for D_L and the open-model
+age t0 (Weinberg 1972, ch. 15, eq. 15.3.x; Peebles 1993, Principles of Physical Cosmology,
+eq. 13.10; equation numbers from memory); de Sitter, E = 1 (de Sitter 1917; its event
+horizon c/H0: Rindler 1956, MNRAS 116, 662).  Constants are the references' own
+(_reference_constants.py), never the engine's.
+"""
 
 from __future__ import annotations
 
@@ -117,7 +127,11 @@ def test_exact_de_sitter_refused():
     dict(h0=70.0, omega_m=0.4, omega_de=0.8, t_cmb=2.7255, m_nu=[0, 0, 0.1]),  # closed
     dict(h0=67.0, omega_m=0.3),  # flat
 ])
-def test_hogg_definitions(params):
+def test_consistency_hogg_definitions(params):
+    # Consistency check: every quantity below is built from the engine's own D_C and E(z),
+    # so it tests the definitions, not the integrals.  Outside references for the same
+    # quantities: test_cosmology_quadrature.py (test_distances, test_comoving_volume,
+    # test_exact_derivatives: independent quadrature with its own constants) and astropy.
     # Hogg 1999, astro-ph/9905116: D_M from D_C (eq. 16), D_A = D_M/(1+z) (eq. 18),
     # D_L = (1+z) D_M (eq. 21), DM = 5 log10(D_L / 10 pc) (eq. 25),
     # dV_C = D_H (1+z)^2 D_A^2 / E dOmega dz (eq. 28), V_C (eq. 29).

@@ -129,3 +129,22 @@ def test_inverses_round_trip(model):
     low = zs[zs < 100]
     lb = np.array([r.lookback(z) for z in low])
     assert rel(c.redshift_at_lookback_time(lb), low) <= TOL
+
+
+def test_horizon_and_hubble_sphere_redshifts(model):
+    # Outside references for the two derived redshifts: the Hubble sphere is where the
+    # recession velocity now is c, D_C(z) = D_H (Davis & Lineweaver 2004, PASA 21, 97,
+    # sec. 2); the event horizon today is where D_C(z) equals the remaining conformal time
+    # R0 (Rindler 1956).  Both solved by brentq on the reference's quadrature.
+    from scipy.optimize import brentq
+
+    c, r = model
+    d = c.derived()
+    z_hs = brentq(lambda z: r.chi(z) - 1.0, 1e-6, 1e4, xtol=1e-14, rtol=1e-14)
+    assert d["hubble_sphere_redshift"] == pytest.approx(z_hs, rel=TOL)
+    if math.isfinite(c.event_horizon_mpc):
+        r0 = r.remaining_eta(0.0)
+        z_eh = brentq(lambda z: r.chi(z) - r0, 1e-6, 1e4, xtol=1e-14, rtol=1e-14)
+        assert d["event_horizon_redshift"] == pytest.approx(z_eh, rel=TOL)
+    else:
+        assert d["event_horizon_redshift"] is None

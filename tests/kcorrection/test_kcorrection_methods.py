@@ -257,9 +257,11 @@ def test_template_derivative_matches_finite_differences_of_direct_k(tmp_path, cu
         assert dkdz[0] == pytest.approx(ref, rel=0.02)
 
 
-def test_template_mix_closed_form_derivatives_match_finite_differences(tmp_path, curves):
-    # The error column uses dK/dz and dK/dc of the mixture in closed form; compare with
-    # central differences of K itself (common practice), where the colour is not clipped.
+def test_consistency_template_mix_derivatives_match_finite_differences(tmp_path, curves):
+    # Consistency check: the error column uses dK/dz and dK/dc of the mixture in closed
+    # form; compare with central differences of the same method's K, where the colour is
+    # not clipped.  (K itself is checked against Hogg et al. 2002 eq. 8 by quad in
+    # test_template_mix_reproduces_a_mixed_object.)
     from annotator_plugins.kcorrection.methods import Method
 
     bands = {
