@@ -36,7 +36,7 @@ class Horizons(CosmologicalAnnotator):
     }
 
     def annotate(self, batch):
-        z = usable_redshift(batch.values("redshift"))
+        z = batch.derived("redshift", usable_redshift)
         out = self.compute(z)
         if self.cosmology.event_horizon_mpc < np.inf:
             cross_null = np.isnan(out["horizon_crossing_age_gyr"])

@@ -12,6 +12,7 @@ from ._redshift import REDSHIFT_HINTS
 class RedshiftChecks(Annotator):
     name = "redshift_checks"
     version = "1.1"
+    documentation = "docs/output.md"
     summary = ("Flags rows with a missing, non-finite or negative (blueshifted) redshift, or one "
                "beyond the cosmology tables.")
     position = 5
