@@ -17,10 +17,13 @@ SCRIPTS = [
     ("bench_cosmology_accuracy.py", []),
     ("bench_pipeline.py", []),
     ("bench_kcorrection.py", []),
+    ("bench_ktable_cache.py", []),
+    ("bench_recovery.py", []),
     ("bench_luminosity_function.py", []),
     ("bench_uncertainty.py", []),
     ("bench_sql.py", []),
     ("bench_dask.py", []),
+    ("bench_csv.py", []),
 ]
 
 
