@@ -40,7 +40,10 @@ TIMEOUT_S = 300
 
 
 def load(path: Path = LIST) -> tuple[int, list[dict]]:
-    data = tomllib.loads(path.read_text())
+    try:
+        data = tomllib.loads(path.read_text())
+    except tomllib.TOMLDecodeError as exc:
+        raise SystemExit(f"{path}: {exc}")
     mutants = data.get("mutant", [])
     seen = set()
     for m in mutants:
