@@ -148,7 +148,7 @@ def build_plan(job: Job, pm=None) -> Plan:
     schema = readers[0].schema
     _check_one_shape(readers)
     try:
-        cosmology = Cosmology.from_dict(job.cosmology)
+        cosmology = Cosmology.from_dict(job.cosmology).build()  # tables: a refusal is here
     except CosmologyError as exc:
         raise ConfigError(f"[cosmology]: {exc}") from exc
     estimates = [r.estimate_rows() for r in readers]
