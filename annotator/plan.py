@@ -7,6 +7,8 @@ The plan is what ``--dry-run`` prints and what every engine executes.
 
 from __future__ import annotations
 
+import os
+
 from dataclasses import dataclass, field
 
 import pyarrow as pa
@@ -90,6 +92,35 @@ def _position(reg: RegisteredAnnotator) -> tuple:
     return (getattr(reg.cls, "position", 100), reg.cls.name)
 
 
+def _check_one_shape(readers) -> None:
+    """Every input must hold the same columns. When they do not (a folder that also holds
+    other tables, e.g. filter curves), say which files hold which columns, in one line."""
+    shapes: dict[frozenset, list] = {}
+    for reader in readers:
+        shapes.setdefault(frozenset(reader.schema.names), []).append(reader)
+    if len(shapes) == 1:
+        return
+    paths = [str(r.source.path) for r in readers]
+    base = os.path.commonpath(paths) if len(paths) > 1 else ""
+    base = base if base and os.path.isdir(base) else os.path.dirname(base)
+
+    def name(reader) -> str:
+        return os.path.relpath(reader.source.path, base) if base else str(reader.source.path)
+
+    groups = sorted(shapes.values(), key=lambda g: (-len(g[0].schema.names), name(g[0])))
+    parts = []
+    for group in groups:
+        cols = group[0].schema.names
+        shown = ", ".join(cols[:4]) + (f", … ({len(cols)} columns)" if len(cols) > 4 else "")
+        files = ", ".join(name(r) for r in group[:3]) + (f" and {len(group) - 3} more"
+                                                          if len(group) > 3 else "")
+        parts.append(f"{files} [{shown}]")
+    where = f"under {base}: " if base else ""
+    raise InputError(f"inputs hold tables of {len(groups)} different shapes; a run reads one "
+                     f"kind of catalogue ({where}{'; '.join(parts)}): name the catalogue files, "
+                     f"or keep other tables out of the input folder")
+
+
 def build_plan(job: Job, pm=None) -> Plan:
     from .cosmology import Cosmology, CosmologyError
 
@@ -115,15 +146,9 @@ def build_plan(job: Job, pm=None) -> Plan:
     sources = expand_inputs(job.inputs, job.input_format)
     readers = [open_reader(s, **job.reader_options()) for s in sources]
     schema = readers[0].schema
-    for reader in readers[1:]:
-        if set(reader.schema.names) != set(schema.names):
-            missing = sorted(set(schema.names) ^ set(reader.schema.names))
-            raise InputError(
-                f"input {reader.source.path}: its columns differ from those of "
-                f"{sources[0].path} (differing: {', '.join(missing)})"
-            )
+    _check_one_shape(readers)
     try:
-        cosmology = Cosmology.from_dict(job.cosmology)
+        cosmology = Cosmology.from_dict(job.cosmology).build()  # tables: a refusal is here
     except CosmologyError as exc:
         raise ConfigError(f"[cosmology]: {exc}") from exc
     estimates = [r.estimate_rows() for r in readers]

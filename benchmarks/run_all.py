@@ -14,6 +14,7 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 SCRIPTS = [
     ("bench_cosmology.py", []),
+    ("bench_cosmology_accuracy.py", []),
     ("bench_pipeline.py", []),
     ("bench_fits.py", []),
     ("bench_kcorrection.py", []),
@@ -23,6 +24,7 @@ SCRIPTS = [
     ("bench_uncertainty.py", []),
     ("bench_sql.py", []),
     ("bench_dask.py", []),
+    ("bench_report.py", []),
     ("bench_csv.py", []),
 ]
 

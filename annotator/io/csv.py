@@ -58,15 +58,22 @@ def _open_binary(path: Path):
     return raw
 
 
-def iter_line_blocks(path: Path, block_bytes: int) -> Iterator[bytearray]:
+def iter_line_blocks(path: Path, block_bytes: int, where: list | None = None
+                     ) -> Iterator[bytearray]:
     """Blocks of whole lines (each ends with a newline, except perhaps the last), read into
-    a fresh buffer each (one copy from the file; pyarrow reads the buffer without another)."""
+    a fresh buffer each (one copy from the file; pyarrow reads the buffer without another).
+
+    ``where``: if given, ``where[0]`` is kept at the bytes of the file on disk read so far
+    (of the compressed file for .gz), for progress (``Chunk.bytes_read``).
+    """
     with _open_binary(path) as fh:
         tail = b""
         while True:
             buf = bytearray(len(tail) + block_bytes)
             buf[: len(tail)] = tail
             n = fh.readinto(memoryview(buf)[len(tail):])
+            if where is not None:  # progress: position in the file on disk
+                where[0] = getattr(fh, "fileobj", fh).tell()
             if not n:
                 if tail:
                     yield bytearray(tail)
@@ -508,11 +515,11 @@ class CsvReader:
             raise InputError(f"input {self.source.path}: cannot convert columns: {exc}") from exc
         return kept, sorted(bad_reason.items())
 
-    def _body_blocks(self) -> Iterator[bytearray]:
+    def _body_blocks(self, where: list | None = None) -> Iterator[bytearray]:
         """The blocks after the header line (which may lack a newline); the first data line
-        is physical line 2."""
+        is physical line 2. ``where``: see :func:`iter_line_blocks` (progress)."""
         first = True
-        for block in iter_line_blocks(self.source.path, self.block_bytes):
+        for block in iter_line_blocks(self.source.path, self.block_bytes, where):
             if first:
                 first = False
                 cut = block.find(b"\n")
@@ -533,10 +540,15 @@ class CsvReader:
         pending_rows = 0
         pending_rejected: list[dict] = []
         line = 2
+        # Progress (issue 16): file bytes read so far and before this block, so that a chunk
+        # ending inside a block gets its share of it (Chunk.bytes_read).
+        where, before = [0], 0
         try:
-            for block in self._body_blocks():
+            for block in self._body_blocks(where):
                 table, rejected, n_lines = self.parse_block(block, line, target)
                 line += n_lines
+                per_row = (where[0] - before) / max(n_lines, 1)  # progress
+                before = where[0]
                 pending.append(table)
                 pending_rows += table.num_rows
                 pending_rejected.extend(rejected)
@@ -544,7 +556,8 @@ class CsvReader:
                     whole = pa.concat_tables(pending)
                     head, rest = whole.slice(0, chunk_rows), whole.slice(chunk_rows)
                     if index >= start_chunk:
-                        yield Chunk(self.source, index, head.combine_chunks(), pending_rejected)
+                        yield Chunk(self.source, index, head.combine_chunks(), pending_rejected,
+                                    bytes_read=int(where[0] - rest.num_rows * per_row))
                     pending_rejected = []
                     index += 1
                     pending = [rest.combine_chunks()] if rest.num_rows else []
@@ -556,7 +569,8 @@ class CsvReader:
                 from exc
         if (pending_rows or pending_rejected) and index >= start_chunk:
             whole = pa.concat_tables(pending) if pending else target.empty_table()
-            yield Chunk(self.source, index, whole.combine_chunks(), pending_rejected)
+            yield Chunk(self.source, index, whole.combine_chunks(), pending_rejected,
+                        bytes_read=self.source.size_bytes)
 
 
 def _decode_lenient(raw: bytes, encoding: str) -> str:
