@@ -736,3 +736,31 @@ class RedshiftPdf(Annotator):
 @hookimpl
 def register_annotators():
     return [RedshiftPdf]
+
+
+def _probability_check(values):
+    low, high = values["low"], values["high"]
+    if not 0.0 <= low < high <= 1.0:
+        return f"need 0 <= low < high <= 1, got low={low:g}, high={high:g}"
+    return None
+
+
+@hookimpl
+def register_selections(manifest):
+    """``undecided``: objects whose reachability is uncertain (low < P < high)."""
+    from annotator.sql import Selection, SelectionParameter
+
+    added = {c.get("name") for c in manifest.get("columns_added", [])}
+    if "reachable_probability" not in added:
+        return []
+    return [Selection(
+        "undecided",
+        "Objects that may or may not be inside our event horizon today: "
+        "low < reachable_probability < high (default 0.05 and 0.95).",
+        "SELECT * FROM catalogue WHERE reachable_probability > ${low} "
+        "AND reachable_probability < ${high}",
+        (SelectionParameter("low", "lowest probability (excluded)", default=0.05),
+         SelectionParameter("high", "highest probability (excluded)", default=0.95)),
+        check=_probability_check,
+        note="reachable_probability comes from the redshift posterior when the job had one "
+             "(manifest: annotators[redshift_pdf]), else from the Gaussian redshift error.")]

@@ -321,9 +321,10 @@ def count_modes(p: np.ndarray, node_mass: np.ndarray, threshold: float, min_mass
     """Separate peaks of each row's density and the probability of the second-largest one.
 
     A peak is a maximal run of consecutive nodes whose density is at least ``threshold``
-    times the row's highest density, holding at least ``min_mass`` of the row's probability
-    (the node masses of the run). Probability in the low-density gaps between runs is given
-    to no peak, so a peak's mass is a lower bound of its basin's.
+    times the row's highest density, holding at least ``min_mass`` of the row's probability.
+    A peak's probability is that of its basin: the low-density gap between two runs is split
+    at its lowest node (nodes up to the minimum go to the left peak, the rest to the right);
+    probability before the first and after the last run goes to those runs.
 
     :return: the count of peaks (int) and the mass of the second-largest (0 when one peak).
     """
@@ -340,16 +341,25 @@ def count_modes(p: np.ndarray, node_mass: np.ndarray, threshold: float, min_mass
     multi = np.flatnonzero(runs > 1)
     if len(multi):
         a = above[multi]
-        label = np.cumsum(starts[multi], axis=1)  # 1..runs on each run
-        k = int(runs[multi].max()) + 1
-        mass = np.where(a, node_mass[multi], 0.0)
+        label = np.cumsum(starts[multi], axis=1)  # 1..runs on each run and the gap after it
         with np.errstate(invalid="ignore", divide="ignore"):
-            mass = mass / node_mass[multi].sum(axis=1)[:, None]
+            pn = np.clip(p[multi] / top[multi, None], 0.0, 1.0)
+        change = np.ones(a.shape, dtype=bool)
+        change[:, 1:] = a[:, 1:] != a[:, :-1]
+        seg = 2.0 * np.cumsum(change, axis=1)  # segment ids, spaced 2 apart (pn is in [0, 1])
+        prefix = np.minimum.accumulate(pn - seg, axis=1) + seg  # min from segment start
+        suffix = np.minimum.accumulate((pn + seg)[:, ::-1], axis=1)[:, ::-1] - seg  # to end
+        interior = ~a & (label >= 1) & (label < runs[multi, None])
+        label = label + (interior & (prefix <= suffix))
+        np.maximum(label, 1, out=label)
+        k = int(runs[multi].max()) + 1
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mass = node_mass[multi] / node_mass[multi].sum(axis=1)[:, None]
         key = (np.arange(len(multi))[:, None] * k + label).ravel()
         per_run = np.bincount(key, weights=mass.ravel(), minlength=len(multi) * k)
         per_run = per_run.reshape(len(multi), k)[:, 1:]
         big = per_run >= min_mass
-        modes[multi] = big.sum(axis=1)
+        modes[multi] = np.maximum(big.sum(axis=1), 1)
         srt = np.sort(np.where(big, per_run, 0.0), axis=1)
         second[multi] = srt[:, -2]
     modes = np.where(np.isfinite(top) & (top > 0), modes, 0)
