@@ -532,8 +532,8 @@ class RedshiftPdf(Annotator):
                 idx = np.flatnonzero(good)
                 take = offs[idx][:, None] + np.arange(g)[None, :]
                 p[idx] = vals[take]
-            self._validate_density(p, good, flags, s, e)
-            self._shared_grid(p, s, e, out, mags, flags)
+            bad = self._validate_density(p, good, flags, s, e)
+            self._shared_grid(p, bad, s, e, out, mags, flags)
             return
         gv, goffs, gnulls, gunread = grid_parts
         goffs = goffs[s:e + 1]
@@ -555,12 +555,14 @@ class RedshiftPdf(Annotator):
                 bad_grid = ~(np.isfinite(z).all(axis=1) & (np.diff(z, axis=1) > 0).all(axis=1)
                              & (z[:, 0] >= 0))
             sub_flags = {k: np.zeros(len(idx), dtype=bool) for k in flags}
-            self._validate_density(p, np.ones(len(idx), dtype=bool), sub_flags, 0, len(idx))
+            bad = self._validate_density(p, np.ones(len(idx), dtype=bool), sub_flags, 0, len(idx))
+            p = p.astype(np.float64)
+            p[bad | bad_grid] = 0.0
             for k, m in sub_flags.items():
                 flags[k][s + idx] |= m
             flags["redshift_pdf_grid_not_increasing"][s + idx] |= bad_grid
             z = np.where(bad_grid[:, None], np.linspace(0, 1, g)[None, :], z)
-            self._object_grids(z, p.astype(np.float64), s + idx, out, mags, flags)
+            self._object_grids(z, p, s + idx, out, mags, flags)
 
     def _validate_density(self, p, good, flags, s, e):
         with np.errstate(invalid="ignore"):
@@ -570,12 +572,15 @@ class RedshiftPdf(Annotator):
         flags["redshift_pdf_nan"][s:e] |= nan & good
         flags["redshift_pdf_negative"][s:e] |= (lo < 0) & good & ~nan
         flags["redshift_pdf_all_zero"][s:e] |= (hi == 0) & good & ~nan
+        return nan | (lo < 0) | ~good
 
-    def _shared_grid(self, p, s, e, out, mags, flags):
+    def _shared_grid(self, p, bad, s, e, out, mags, flags):
         """One shared grid: the probability and the means are one matrix product."""
         tab = self._grid_cache
         grid = self.grid
         p = p.astype(np.float64)  # once: every pass below is in double precision
+        if bad.any():
+            p[bad] = 0.0  # set aside (flagged); zeros keep every row's CDF monotone
         sums = p @ tab["weights"]  # rows x (2 + quantities): one matrix product
         total = sums[:, 0]
         with np.errstate(invalid="ignore", divide="ignore"):

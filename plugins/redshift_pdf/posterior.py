@@ -78,7 +78,10 @@ def _row_search(cdf_norm: np.ndarray, targets: np.ndarray) -> np.ndarray:
     """
     rows, g = cdf_norm.shape
     offset = 2.0 * np.arange(rows, dtype=np.float64)
-    flat = (cdf_norm + offset[:, None]).ravel()
+    flat = np.nan_to_num(cdf_norm, nan=0.0)  # rows without a usable CDF (set aside later)
+    np.clip(flat, 0.0, 1.0, out=flat)
+    flat += offset[:, None]
+    flat = flat.ravel()
     pos = np.searchsorted(flat, (targets + offset[:, None]).ravel(), side="left")
     return pos.reshape(targets.shape) - (np.arange(rows) * g)[:, None]
 
