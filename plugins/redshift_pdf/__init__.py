@@ -723,7 +723,9 @@ class RedshiftPdf(Annotator):
             mat[row_of, col] = M
             wts[row_of, col] = 1.0
             q = post.weighted_quantiles(mat, wts, LEVELS)
-            mean = post.sample_means(np.where(defined, M, np.nan), rel)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                mean = (np.bincount(row_of[defined], weights=M[defined], minlength=n_rows)
+                        / np.bincount(row_of[defined], minlength=n_rows))
             self._mag_out(b, q, mean, rows, out)
             undefined = np.bincount(row_of[~defined], minlength=n_rows) > 0
             self._partial(rows, undefined & np.isfinite(m), flags)
