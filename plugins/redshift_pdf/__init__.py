@@ -37,17 +37,19 @@ KINDS = ("gridded", "samples", "quantiles")
 KEYS = {
     "gridded": ("kind", "column", "grid", "grid_file", "grid_column", "list_delimiter",
                 "mode_threshold", "mode_min_mass", "secondary_peak_mass",
-                "absolute_magnitudes", "block_rows"),
+                "absolute_magnitudes", "block_rows", "outputs"),
     "samples": ("kind", "column", "list_delimiter", "mode_threshold", "mode_min_mass",
                 "secondary_peak_mass", "sample_mode_bins", "absolute_magnitudes",
-                "block_rows"),
+                "block_rows", "outputs"),
     "quantiles": ("kind", "quantile_levels", "quantile_columns", "nodes_per_interval",
                   "mode_threshold", "mode_min_mass", "secondary_peak_mass",
-                  "absolute_magnitudes", "block_rows"),
+                  "absolute_magnitudes", "block_rows", "outputs"),
 }
+OUTPUTS = ("all", "reachability")
 SECTION = "redshift_pdf"
 LEVELS = np.array([0.16, 0.50, 0.84])
 TAGS = ("p16", "p50", "p84")
+COARSE_BLOCK = 10  # shared grids: CDF by matrix product every 10 nodes, refined locally
 PDF_INPUT = "redshift_pdf"
 GRID_INPUT = "redshift_pdf_grid"
 
@@ -242,6 +244,31 @@ def _parse_text_lists(arr, delimiter):
     return lists, unreadable
 
 
+_INT_VIEW = {np.dtype(np.float32): np.int32, np.dtype(np.float64): np.int64}
+
+
+def _lowest(p: np.ndarray) -> np.ndarray:
+    """Each row's lowest value (NaN rows are found from their integrals instead).
+
+    IEEE floats of one sign order like their bit patterns read as integers, and an integer
+    minimum is several times faster than a float one: only rows whose smallest pattern is
+    negative (a sign bit: a negative number, -0.0 or a negative NaN) are looked at as floats.
+    """
+    lo = p.view(_INT_VIEW[p.dtype]).min(axis=1)
+    out = np.zeros(len(p))
+    signed = np.flatnonzero(lo < 0)
+    if len(signed):
+        out[signed] = np.min(p[signed], axis=1)
+    return out
+
+
+def _highest(p: np.ndarray) -> np.ndarray:
+    """Each row's highest value, for rows without negative values (the others are set
+    aside): the integer maximum of the bit patterns, read back as a float."""
+    hi = p.view(_INT_VIEW[p.dtype]).max(axis=1)
+    return hi.astype(_INT_VIEW[p.dtype]).view(p.dtype).astype(np.float64)
+
+
 class RedshiftPdf(Annotator):
     name = "redshift_pdf"
     version = "1.0"
@@ -290,7 +317,9 @@ class RedshiftPdf(Annotator):
         self.replaces = ("reachable_probability",)
         self.flags = {k: v for k, v in FLAGS.items()
                       if self.bands or k != "redshift_pdf_magnitude_partial"}
-        self.provides = tuple(self._columns())
+        self.reach_only = self.opts.get("outputs") == "reachability"
+        cols = self._columns()
+        self.provides = tuple(cols[:1] if self.reach_only else cols)
         self.z_eh = None
         self._prepared = False
         self._grid_cache = None
@@ -365,7 +394,12 @@ class RedshiftPdf(Annotator):
             raise _err(setup, "list_delimiter", "',' separates the CSV's own fields; use ';', "
                        "'|' or ' '")
         opts["list_delimiter"] = delim
-        want_mag = cfg.get("absolute_magnitudes", True)
+        outputs = cfg.get("outputs", "all")
+        if outputs not in OUTPUTS:
+            raise _err(setup, "outputs", f"expected one of {', '.join(OUTPUTS)}, got "
+                       f"{outputs!r}")
+        opts["outputs"] = outputs
+        want_mag = cfg.get("absolute_magnitudes", True) and outputs == "all"
         if not isinstance(want_mag, bool):
             raise _err(setup, "absolute_magnitudes", f"expected true or false, got {want_mag!r}")
         bands = []
@@ -456,16 +490,21 @@ class RedshiftPdf(Annotator):
             neg_inf_at.append(np.flatnonzero(bad))
             wk[bad] = 0.0
             cols.append(wk)
-        weights = np.column_stack(cols)
+        nodes, coarse = post.coarse_weights(grid, COARSE_BLOCK)
+        weights = np.column_stack(cols + [coarse])
         mu_grid = self.cosmology.distance_modulus_mag(grid)
-        return {"w": w, "weights": weights, "bad_nodes": neg_inf_at, "mu": mu_grid}
+        return {"w": w, "weights": weights, "bad_nodes": neg_inf_at, "mu": mu_grid,
+                "coarse_nodes": nodes,
+                "weights32": np.ascontiguousarray(weights[:, :2], dtype=np.float32)}
 
     # -- per batch -------------------------------------------------------------------------
     def annotate(self, batch):
         if not self._prepared:
             self.prepare()
         n = batch.num_rows
-        out = {spec.name: np.full(n, np.nan) for spec in self.provides}
+        fast = self.reach_only and self.grid is not None  # writes reachable_probability only
+        out = {spec.name: np.full(n, np.nan) for spec in (self.provides if fast
+                                                           else self._columns())}
         out["redshift_pdf_modes"] = np.zeros(n, dtype=np.int16)
         flags = {k: np.zeros(n, dtype=bool) for k in self.flags}
         mags = {name: batch.values(logical) for name, logical in self.mag_inputs.items()}
@@ -486,8 +525,10 @@ class RedshiftPdf(Annotator):
                 self._run_blocks(n, lambda s, e: self._gridded_block(
                     vals, offs[s:e + 1], nulls[s:e], unreadable[s:e], grid_parts, s, e, out,
                     flags, mags))
-        secondary = out["redshift_pdf_secondary_mass"] > self.opts["secondary_peak_mass"]
-        flags["redshift_pdf_secondary_peak"] |= np.nan_to_num(secondary, nan=0.0) > 0
+        if not fast:
+            with np.errstate(invalid="ignore"):
+                secondary = out["redshift_pdf_secondary_mass"] > self.opts["secondary_peak_mass"]
+            flags["redshift_pdf_secondary_peak"] |= secondary
         for reason, mask in flags.items():
             if mask.any():
                 batch.flag(reason, mask)
@@ -495,7 +536,10 @@ class RedshiftPdf(Annotator):
         for reason in SET_ASIDE:
             aside |= flags[reason]
         result = {}
+        wanted = {spec.name for spec in self.provides}
         for name, v in out.items():
+            if name not in wanted:
+                continue
             if name == "redshift_pdf_modes":
                 result[name] = np.ma.MaskedArray(v, mask=aside)
             else:
@@ -532,8 +576,7 @@ class RedshiftPdf(Annotator):
                 idx = np.flatnonzero(good)
                 take = offs[idx][:, None] + np.arange(g)[None, :]
                 p[idx] = vals[take]
-            bad = self._validate_density(p, good, flags, s, e)
-            self._shared_grid(p, bad, s, e, out, mags, flags)
+            self._shared_grid(p, s, e, out, mags, flags, good)
             return
         gv, goffs, gnulls, gunread = grid_parts
         goffs = goffs[s:e + 1]
@@ -574,33 +617,63 @@ class RedshiftPdf(Annotator):
         flags["redshift_pdf_all_zero"][s:e] |= (hi == 0) & good & ~nan
         return nan | (lo < 0) | ~good
 
-    def _shared_grid(self, p, bad, s, e, out, mags, flags):
-        """One shared grid: the probability and the means are one matrix product."""
+    def _shared_grid(self, p, s, e, out, mags, flags, good):
+        """One shared grid: probability, means and the coarse CDF are matrix products."""
         tab = self._grid_cache
         grid = self.grid
-        p = p.astype(np.float64)  # once: every pass below is in double precision
-        if bad.any():
-            p[bad] = 0.0  # set aside (flagged); zeros keep every row's CDF monotone
-        sums = p @ tab["weights"]  # rows x (2 + quantities): one matrix product
+        if p.dtype not in (np.float32, np.float64):
+            p = p.astype(np.float64)
+        lo = _lowest(p)
+        if self.reach_only:  # two float32 matrix-vector products, nothing else
+            p32 = p.astype(np.float32, copy=False)
+            total = np.dot(p32, tab["weights32"][:, 0]).astype(np.float64)
+            below = np.dot(p32, tab["weights32"][:, 1]).astype(np.float64)
+            bad = self._validate(lo, total, good, flags, s, e)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                prob = below / total
+            prob[bad] = np.nan
+            out["reachable_probability"][s:e] = np.clip(prob, 0.0, 1.0)
+            return
+        p64 = p.astype(np.float64)  # once: the products below are in double precision
+        sums = p64 @ tab["weights"]  # rows x (2 + quantities + coarse CDF nodes)
         total = sums[:, 0]
+        bad = self._validate(lo, total, good, flags, s, e)
+        if bad.any():  # set aside (flagged); zeros keep every row's CDF monotone
+            p64[bad] = 0.0
+            sums[bad] = 0.0
+            total = sums[:, 0]
+        nq = len(QUANTITIES)
         with np.errstate(invalid="ignore", divide="ignore"):
             out["reachable_probability"][s:e] = np.clip(sums[:, 1] / total, 0.0, 1.0)
             for k, (stem, suffix, *_rest) in enumerate(QUANTITIES):
                 mean = sums[:, 2 + k] / total
-                bad = tab["bad_nodes"][k]
-                if len(bad):
-                    mean[(p[:, bad] > 0).any(axis=1)] = np.nan
+                bad_nodes = tab["bad_nodes"][k]
+                if len(bad_nodes):
+                    mean[(p64[:, bad_nodes] > 0).any(axis=1)] = np.nan
                 out[f"{stem}_mean{'_' + suffix if suffix else ''}"][s:e] = mean
-        cdf, tot = post.grid_cdf(grid, p)
-        zq = post.grid_quantiles(grid, p, cdf, tot, LEVELS)
+        coarse = sums[:, 2 + nq:]
+        zq = post.shared_grid_quantiles(grid, p64, coarse, tab["coarse_nodes"], LEVELS)
         self._map_quantiles(zq, slice(s, e), out)
-        node_mass = p * tab["w"]
-        modes, second = self._modes(p, node_mass)
+        modes, second = post.count_modes(p, tab["w"], self.opts["mode_threshold"],
+                                         self.opts["mode_min_mass"], top=_highest(p))
         out["redshift_pdf_modes"][s:e] = modes
         out["redshift_pdf_secondary_mass"][s:e] = second
         if self.bands:
-            self._magnitudes(np.broadcast_to(grid, p.shape), node_mass, tab["mu"][None, :],
-                             slice(s, e), out, mags, flags)
+            self._magnitudes(np.broadcast_to(grid, p.shape), p64 * tab["w"],
+                             tab["mu"][None, :], slice(s, e), out, mags, flags)
+
+    @staticmethod
+    def _validate(lo, total, good, flags, s, e):
+        """Flags from a row's lowest density and its integral: NaN (or an infinite
+        integral), a negative density, all zero. Returns the rows to set aside."""
+        with np.errstate(invalid="ignore"):
+            nan = ~np.isfinite(total) | np.isnan(lo)
+            neg = (lo < 0) & ~nan
+            zero = (total == 0) & ~nan & ~neg
+        flags["redshift_pdf_nan"][s:e] |= nan & good
+        flags["redshift_pdf_negative"][s:e] |= neg & good
+        flags["redshift_pdf_all_zero"][s:e] |= zero & good
+        return nan | neg | zero | ~good
 
     def _object_grids(self, z, p, rows, out, mags, flags):
         """Per-object grids (also the quantile input): the cosmology on every node."""
@@ -620,7 +693,7 @@ class RedshiftPdf(Annotator):
                 out[f"{stem}_mean{'_' + suffix if suffix else ''}"][rows] = mean
         zq = post.grid_quantiles(z, p, cdf, tot, LEVELS)
         self._map_quantiles(zq, rows, out)
-        modes, second = self._modes(p, node_mass)
+        modes, second = self._modes(p, w)
         out["redshift_pdf_modes"][rows] = modes
         out["redshift_pdf_secondary_mass"][rows] = second
         if self.bands:
