@@ -61,6 +61,9 @@ class Annotator:
       replaces the Gaussian one). The other annotator still runs, but its values of that
       column are dropped; the manifest records, for that annotator, which column was replaced
       and by whom. Two annotators that both claim to replace a column are refused.
+    * ``settings``: a small JSON-serialisable dict of what this job configured (a method, a
+      grid), recorded in the manifest beside the annotator so readers of the output (the
+      report) need not re-read the job's files. Default: empty (nothing recorded).
     """
 
     name: ClassVar[str] = ""
@@ -79,6 +82,7 @@ class Annotator:
     flags: Mapping[str, str] = {}
     column_map: Mapping[str, str] = {}
     replaces: tuple[str, ...] = ()
+    settings: Mapping[str, Any] = {}
 
     @classmethod
     def configure(cls, setup: "Setup") -> "Annotator | None":

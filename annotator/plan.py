@@ -74,6 +74,7 @@ class Plan:
                 "inputs": {k: v[1] for k, v in s.resolve.items()},
                 "columns": [c.name for c in s.columns],
                 **({"columns_replaced": dict(s.replaced)} if s.replaced else {}),
+                **({"settings": dict(s.annotator.settings)} if s.annotator.settings else {}),
             }
             for s in self.steps
         ]

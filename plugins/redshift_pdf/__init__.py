@@ -55,7 +55,7 @@ GRID_INPUT = "redshift_pdf_grid"
 
 DEFAULTS = {"mode_threshold": 0.05, "mode_min_mass": 0.01, "secondary_peak_mass": 0.10,
             "sample_mode_bins": 24, "nodes_per_interval": 16, "block_rows": 16384,
-            "list_delimiter": ";"}
+            "list_delimiter": ";", "outputs": "all"}
 
 # (stem, unit suffix, VOUnit, UCD, quantity, cosmology method, increases with z)
 QUANTITIES = (
@@ -317,6 +317,16 @@ class RedshiftPdf(Annotator):
         self.replaces = ("reachable_probability",)
         self.flags = {k: v for k, v in FLAGS.items()
                       if self.bands or k != "redshift_pdf_magnitude_partial"}
+        self.settings = {
+            "kind": kind, "pdf_column": pdf_column, "grid_column": grid_column,
+            "grid": None if grid is None else [float(x) for x in grid],
+            "quantile_levels": None if quantile_levels is None else
+            [float(x) for x in quantile_levels], "quantile_columns": list(quantile_columns),
+            "percentiles": [16, 50, 84], "outputs": self.opts["outputs"],
+            "mode_threshold": self.opts["mode_threshold"],
+            "mode_min_mass": self.opts["mode_min_mass"],
+            "secondary_peak_mass": self.opts["secondary_peak_mass"],
+            "bands": [b.name for b in self.bands]}
         self.reach_only = self.opts.get("outputs") == "reachability"
         cols = self._columns()
         self.provides = tuple(cols[:1] if self.reach_only else cols)
