@@ -17,6 +17,7 @@ SCRIPTS = [
     ("bench_pipeline.py", []),
     ("bench_kcorrection.py", []),
     ("bench_uncertainty.py", []),
+    ("bench_redshift_pdf.py", []),
     ("bench_sql.py", []),
     ("bench_dask.py", []),
 ]
