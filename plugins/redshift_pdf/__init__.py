@@ -274,6 +274,7 @@ class RedshiftPdf(Annotator):
     version = "1.0"
     summary = ("Reachability probability, distances, times and absolute magnitudes from each "
                "object's redshift posterior (samples, gridded PDF or quantile columns).")
+    documentation = "docs/redshift-pdf.md"
     sections = (SECTION, "bands")
     position = 55
 
@@ -377,7 +378,7 @@ class RedshiftPdf(Annotator):
     def configure(cls, setup):
         setup.reject_unknown_options(())
         if SECTION not in setup.sections:
-            return None
+            return setup.does_not_apply(f"no [{SECTION}] table in the job")
         cfg = setup.sections[SECTION]
         if not isinstance(cfg, dict):
             raise setup.error(f"[{SECTION}]", f"expected a table, got {cfg!r}")
