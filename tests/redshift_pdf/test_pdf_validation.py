@@ -190,3 +190,51 @@ def test_no_uncertainties_no_conflict_and_without_section_nothing(tmp_path):
     assert "uncertainties" not in [s.name for s in plan.steps]
     assert out.column("reachable_probability")[0].as_py() == pytest.approx(
         norm.cdf(Z_EH, 1.0, 0.2), abs=2e-3)  # scipy.stats.norm
+
+
+def test_reachability_only_output_equals_the_full_one(tmp_path):
+    """outputs = "reachability" (float32 matrix-vector products) against the full double
+    precision path (consistency check, float32 rounding of the sums)."""
+    centres = np.linspace(0.5, 3.0, 40)
+    dens = norm.pdf(GRID, centres[:, None], 0.2)
+    dens[3, 10] = np.nan
+    table = pa.table({"z": centres, "pz": list_column(dens)})
+    full, f_full, _ = annotate(tmp_path, table, {"kind": "gridded", "column": "pz",
+                                                 "grid": GRID_CFG})
+    fast, f_fast, _ = annotate(tmp_path, table, {"kind": "gridded", "column": "pz",
+                                                 "grid": GRID_CFG, "outputs": "reachability"})
+    assert "redshift_p50" not in fast.column_names
+    np.testing.assert_allclose(col(fast, "reachable_probability"),
+                               col(full, "reachable_probability"), atol=2e-6)
+    assert f_fast["redshift_pdf_nan"] == f_full["redshift_pdf_nan"] == 1
+
+
+def test_two_annotators_replacing_the_same_column_are_refused(tmp_path):
+    """Annotator.replaces: one replacer wins over a plain provider; two replacers clash."""
+    from annotator import Annotator, ColumnSpec, hookimpl
+    from annotator.config import job_from_mapping
+    from annotator.errors import PlanError
+    from annotator.plan import build_plan
+    from annotator.registry import load_registry
+
+    class Rival(Annotator):
+        name = "rival_probability"
+        replaces = ("reachable_probability",)
+        provides = (ColumnSpec("reachable_probability", pa.float64(), None,
+                               "stat.probability", "A rival."),)
+
+        def annotate(self, batch):
+            return {"reachable_probability": np.zeros(batch.num_rows)}
+
+    class RivalPlugin:
+        @staticmethod
+        @hookimpl
+        def register_annotators():
+            return [Rival]
+
+    pq.write_table(pa.table({"z": [1.0], "pz": list_column([GOOD])}), tmp_path / "c.parquet")
+    job = job_from_mapping({"input": {"paths": ["c.parquet"]},
+                            "redshift_pdf": {"kind": "gridded", "column": "pz",
+                                             "grid": GRID_CFG}}, base_dir=tmp_path)
+    with pytest.raises(PlanError, match="added by two annotators"):
+        build_plan(job, load_registry(extra_plugins=[RivalPlugin]))
