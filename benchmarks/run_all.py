@@ -16,11 +16,14 @@ SCRIPTS = [
     ("bench_cosmology.py", []),
     ("bench_pipeline.py", []),
     ("bench_kcorrection.py", []),
+    ("bench_ktable_cache.py", []),
+    ("bench_recovery.py", []),
     ("bench_luminosity_function.py", []),
     ("bench_uncertainty.py", []),
     ("bench_redshift_pdf.py", []),
     ("bench_sql.py", []),
     ("bench_dask.py", []),
+    ("bench_csv.py", []),
 ]
 
 
