@@ -85,10 +85,13 @@ def test_template_mixture_posterior_at_a_point_equals_the_kcorrection_annotator(
         (tmp_path / name).symlink_to(SAMPLES / name)
     out, flags, _ = annotate(tmp_path, table, {"kind": "samples", "column": "s"}, bands)
     direct = col(out, "absolute_magnitude_amber_mag")
-    np.testing.assert_allclose(col(out, "absolute_magnitude_amber_p50_mag"), direct,
-                               rtol=1e-12)
-    np.testing.assert_allclose(col(out, "absolute_magnitude_amber_mean_mag"), direct,
-                               rtol=1e-12)
-    assert flags["redshift_pdf_magnitude_partial"] == 1
-    assert "redshift_pdf_magnitude_partial" in out.column("annotation_flags")[2].as_py()
+    finite = np.isfinite(direct)  # the mixture refuses colours outside its range (row 0 may)
+    assert finite[1:].all()
+    np.testing.assert_allclose(col(out, "absolute_magnitude_amber_p50_mag")[finite],
+                               direct[finite], rtol=1e-12)
+    np.testing.assert_allclose(col(out, "absolute_magnitude_amber_mean_mag")[finite],
+                               direct[finite], rtol=1e-12)
+    flags_text = out.column("annotation_flags").to_pylist()
+    assert "redshift_pdf_magnitude_partial" in flags_text[2]
+    assert "redshift_pdf_magnitude_partial" not in flags_text[1]
     assert math.isfinite(col(out, "absolute_magnitude_amber_p84_mag")[2])
