@@ -33,6 +33,12 @@ class Step:
     annotator: Annotator
     registered: RegisteredAnnotator
     resolve: dict[str, tuple[str, str]]
+    replaced: dict[str, str] = field(default_factory=dict)  # column -> annotator replacing it
+
+    @property
+    def columns(self) -> list[ColumnSpec]:
+        """The columns this step writes: its ``provides`` minus those another one replaces."""
+        return [c for c in self.annotator.provides if c.name not in self.replaced]
 
     @property
     def name(self) -> str:
@@ -70,7 +76,9 @@ class Plan:
                 "plugin": s.registered.plugin,
                 "distribution": s.registered.distribution,
                 "inputs": {k: v[1] for k, v in s.resolve.items()},
-                "columns": [c.name for c in s.annotator.provides],
+                "columns": [c.name for c in s.columns],
+                **({"columns_replaced": dict(s.replaced)} if s.replaced else {}),
+                **({"settings": dict(s.annotator.settings)} if s.annotator.settings else {}),
             }
             for s in self.steps
         ]
@@ -189,10 +197,20 @@ def build_plan(job: Job, pm=None) -> Plan:
 
     # -- who provides what -------------------------------------------------------------
     providers: dict[str, int] = {}
+    replaced: dict[int, dict[str, str]] = {}
     for i, (inst, reg) in enumerate(configured):
         for col in inst.provides:
             if col.name in providers:
-                other = configured[providers[col.name]][1]
+                j = providers[col.name]
+                other_inst, other = configured[j]
+                mine = col.name in inst.replaces
+                theirs = col.name in other_inst.replaces
+                if mine != theirs:
+                    # one replaces the other's column: the replacer provides it
+                    loser, winner = (j, i) if mine else (i, j)
+                    replaced.setdefault(loser, {})[col.name] = configured[winner][1].cls.name
+                    providers[col.name] = winner
+                    continue
                 raise PlanError(
                     f"column {col.name!r} is added by two annotators: {other.cls.name!r} "
                     f"({other.cls.origin()}) and {reg.cls.name!r} ({reg.cls.origin()}); "
@@ -365,8 +383,9 @@ def build_plan(job: Job, pm=None) -> Plan:
         done.add(i)
         remaining.remove(i)
 
-    steps = [Step(configured[i][0], configured[i][1], resolves[i]) for i in order]
-    added = [col for s in steps for col in s.annotator.provides]
+    steps = [Step(configured[i][0], configured[i][1], resolves[i], replaced.get(i, {}))
+             for i in order]
+    added = [col for s in steps for col in s.columns]
     out_fields = list(schema) + [pa.field(c.name, c.type) for c in added] + \
         [pa.field(FLAGS_COLUMN.name, FLAGS_COLUMN.type)]
     flag_reasons: list[tuple[str, str, str]] = []
@@ -416,9 +435,11 @@ def describe_plan(plan: Plan) -> str:
     name_width = max((len(c.name) for c in plan.added_columns), default=0)
     for s in plan.steps:
         lines.append(f"  {s.name} {s.annotator.version}  [{s.registered.distribution}]")
-        for col in s.annotator.provides:
+        for col in s.columns:
             lines.append(f"      + {col.name:<{name_width}} {str(col.type):<7} "
                          f"{col.unit or '-':<4} {col.ucd or ''}")
+        for col, by in s.replaced.items():
+            lines.append(f"      ({col}: replaced by {by})")
     for name, why in plan.skipped:
         lines.append(f"  ({name}: {why})")
     lines.append(f"      + {FLAGS_COLUMN.name}")

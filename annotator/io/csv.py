@@ -436,7 +436,20 @@ class CsvReader:
     def parse_block(self, block, first_line: int, target: pa.Schema
                     ) -> tuple[pa.Table, list[dict], int]:
         """Parse one block of whole lines that starts at physical line ``first_line``;
-        returns the rows read, the rows set aside and the block's count of physical lines."""
+        returns the rows read, the rows set aside and the block's count of physical lines.
+
+        A column whose target type is a list (another input, Parquet, has it so) is read as
+        text and converted by :func:`text_to_list` (``;``-separated numbers)."""
+        if not any(_is_list(f.type) for f in target):
+            return self._parse_block(block, first_line, target)
+        table, rejected, n_lines = self._parse_block(block, first_line, _lists_as_text(target))
+        for i, f in enumerate(target):
+            if _is_list(f.type):
+                table = table.set_column(i, f.name, text_to_list(table.column(f.name), f.type))
+        return table, rejected, n_lines
+
+    def _parse_block(self, block, first_line: int, target: pa.Schema
+                     ) -> tuple[pa.Table, list[dict], int]:
         clean, numbers, rejected, n_lines = self._clean(block, first_line)
         if not clean:
             return target.empty_table(), rejected, n_lines
@@ -653,6 +666,39 @@ def _why(field: pa.Field, text) -> str:
             pass
     # the value itself is in the raw text; a fixed reason groups well in SQL
     return f"column {field.name!r}: text where a {field.type} belongs"
+
+
+LIST_SEPARATOR = ";"
+
+
+def _is_list(typ: pa.DataType) -> bool:
+    return pa.types.is_list(typ) or pa.types.is_large_list(typ) or \
+        pa.types.is_fixed_size_list(typ)
+
+
+def _lists_as_text(schema: pa.Schema) -> pa.Schema:
+    return pa.schema([pa.field(f.name, pa.string()) if _is_list(f.type) else f for f in schema])
+
+
+def text_to_list(col, typ: pa.DataType) -> pa.Array:
+    """A CSV field holding a ``;``-separated list of numbers, as the list type ``typ`` that
+    another input (Parquet) has for the column. An empty field is null; an element that is
+    not a number becomes a null element (the annotator that reads the list flags the row)."""
+    import pandas as pd
+
+    if isinstance(col, pa.ChunkedArray):
+        col = col.combine_chunks()
+    value_type = typ.value_type
+    parts = pc.split_pattern(pc.utf8_trim_whitespace(col), LIST_SEPARATOR)
+    flat = pc.utf8_trim_whitespace(parts.flatten())
+    try:
+        values = pc.cast(flat, value_type)
+    except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+        strings = pd.Series(flat.to_numpy(zero_copy_only=False), dtype=object)
+        values = pa.array(pd.to_numeric(strings, errors="coerce"), from_pandas=True)
+        values = pc.cast(values, value_type)
+    out = pa.ListArray.from_arrays(parts.offsets, values, mask=col.is_null())
+    return out.cast(typ) if out.type != typ else out
 
 
 def _row_values(table: pa.Table, i: int) -> list:
