@@ -48,6 +48,9 @@ def add_arguments(p) -> None:
     p.add_argument("--disk-wait", type=float, default=3600.0, metavar="S",
                    help="how long a job waits for disk space before it ends in ERROR "
                         "(default 3600 s)")
+    p.add_argument("--no-reports", action="store_false", dest="reports",
+                   help="do not build an HTML report of each completed job (default: build "
+                        "it, in a low-priority process after the job completes)")
     p.add_argument("--head-timeout", type=float, default=10.0, metavar="S",
                    help="a connection must send a complete request head within S seconds "
                         "(default 10)")
@@ -150,7 +153,8 @@ def main(args) -> int:
                            max_crashes=args.max_crashes, head_timeout_s=args.head_timeout,
                            body_timeout_s=args.body_timeout, group=args.group,
                            keep_days=args.keep_days, keep_count=args.keep_count,
-                           disk_fraction=args.disk_use_fraction, disk_wait_s=args.disk_wait)
+                           disk_fraction=args.disk_use_fraction, disk_wait_s=args.disk_wait,
+                           reports=args.reports)
     app = create_app(config)
     write_json_atomic({"url": url, "pid": os.getpid(), "root": str(root),
                        "data_roots": [str(r) for r in data_roots], "workers": args.workers,

@@ -83,6 +83,7 @@ class ServiceConfig:
     keep_count: int | None = None
     disk_fraction: float = 0.8
     disk_wait_s: float = 3600.0
+    reports: bool = True
     started_at: float = field(default_factory=time.time)
 
     @property
@@ -91,6 +92,7 @@ class ServiceConfig:
 
 
 MAX_PATH_CHARS = 2048
+MAX_HEAD_BYTES = 16 * 1024
 MAX_QUERY_CHARS = 4096
 #: deepest nesting of tables/arrays a job mapping may have (a real job file has 3)
 MAX_JOB_DEPTH = 32
@@ -155,7 +157,10 @@ class Guard:
             return 400, {"error": "query string is not UTF-8 once percent-decoded"}, ()
         if _has_control(decoded_query):
             return 400, {"error": "query string holds a control character (NUL, newline...)"}, ()
-        headers = {k.lower(): v for k, v in scope.get("headers", [])}
+        raw_headers = scope.get("headers", [])
+        if sum(len(k) + len(v) + 4 for k, v in raw_headers) > MAX_HEAD_BYTES:
+            return 431, {"error": f"request headers over {MAX_HEAD_BYTES} bytes"}, ()  # RFC 6585
+        headers = {k.lower(): v for k, v in raw_headers}
         scope[AUTH] = self._who(scope, headers)
         if scope[AUTH] is None:
             method = scope.get("method", "GET")
@@ -387,7 +392,7 @@ def create_app(config: ServiceConfig) -> FastAPI:
                       max_crashes=config.max_crashes, umask=privacy.umask,
                       retention=Retention(config.jobs_dir, config.keep_days, config.keep_count),
                       disk_guard=DiskGuard(config.jobs_dir, config.disk_fraction,
-                                           config.disk_wait_s))
+                                           config.disk_wait_s), reports=config.reports)
     sessions = Sessions(open_service=config.token is None)
     plugins = _PluginManager()
     # One validation at a time: annotators' configure() need not be thread-safe, and
@@ -453,7 +458,8 @@ def create_app(config: ServiceConfig) -> FastAPI:
               file=sys.stderr, flush=True)
         return JSONResponse({"error": f"internal error ({type(exc).__name__}); the service "
                                       f"log has the details under request id {rid}",
-                             "request_id": rid}, status_code=500)
+                             "request_id": rid}, status_code=500,
+                            headers={"x-request-id": rid})  # sent outside the Guard
 
     def find(ident: str):
         record = ledger.get(ident)

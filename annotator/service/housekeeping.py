@@ -60,7 +60,7 @@ class Retention:
                 doomed.setdefault(r.id, f"more than {self.keep_count} finished jobs kept")
         archived = []
         for r in finished:
-            if r.id not in doomed:
+            if r.id not in doomed or r.report_pending:  # its report is still being built
                 continue
             if not remove_job_folder(r.folder, self.jobs_dir, r.id):
                 continue

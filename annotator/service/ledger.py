@@ -79,7 +79,7 @@ CREATE TABLE IF NOT EXISTS durations (
 
 #: columns added after the first release of schema 1 (added in place when missing)
 _ADDED_COLUMNS = {"estimated_bytes": "INTEGER", "report_path": "TEXT",
-                  "report_error": "TEXT", "waiting": "TEXT"}
+                  "report_error": "TEXT", "waiting": "TEXT", "report_pending": "INTEGER"}
 
 
 def job_id(seq: int) -> str:
@@ -133,6 +133,7 @@ class JobRecord:
     report_path: str | None = None
     report_error: str | None = None
     waiting: str | None = None
+    report_pending: int | None = None
 
     @classmethod
     def from_row(cls, row: sqlite3.Row) -> JobRecord:
@@ -157,6 +158,7 @@ class JobRecord:
             "report": f"/jobs/{self.id}/report" if self.report_path else None,
             "report_path": self.report_path,
             "report_error": self.report_error,
+            "report_pending": bool(self.report_pending),
             "estimated_output_bytes": self.estimated_bytes,
             "waiting": self.waiting if self.phase == QUEUED else None,
             "error": self.error,
@@ -317,7 +319,7 @@ class Ledger:
     def complete(self, identifier: str, *, manifest_path: str, rows_done: int,
                  rows_per_second: float | None, parts_done: int | None = None,
                  rows_written: int | None = None, rows_rejected: int | None = None,
-                 report_path: str | None = None, report_error: str | None = None) -> bool:
+                 report_pending: bool = False) -> bool:
         now = time.time()
         seq = job_seq(identifier)
         with self._connect() as con:
@@ -325,10 +327,10 @@ class Ledger:
             cur = con.execute(
                 "UPDATE jobs SET phase = ?, manifest_path = ?, rows_done = ?, "
                 "rows_total = ?, parts_done = COALESCE(?, parts_done), rows_per_second = ?, "
-                "eta_s = 0, error = NULL, report_path = ?, report_error = ?, finished_at = ?, "
+                "eta_s = 0, error = NULL, report_pending = ?, finished_at = ?, "
                 "updated_at = ? WHERE seq = ? AND phase = ?",
                 (COMPLETED, manifest_path, rows_done, rows_done, parts_done, rows_per_second,
-                 report_path, report_error, now, now, seq, EXECUTING))
+                 1 if report_pending else 0, now, now, seq, EXECUTING))
             if cur.rowcount == 1:
                 self._event(con, seq, COMPLETED, f"{rows_done} rows", now)
                 self._bump(con, "rows_read", rows_done)
@@ -398,9 +400,17 @@ class Ledger:
         return cur.rowcount == 1
 
     def set_report(self, identifier: str, report_path: str | None, error: str | None) -> None:
+        """The outcome of building a job's report (it is no longer pending)."""
         with self._connect() as con:
-            con.execute("UPDATE jobs SET report_path = ?, report_error = ? WHERE seq = ?",
-                        (report_path, error, job_seq(identifier)))
+            con.execute("UPDATE jobs SET report_path = ?, report_error = ?, report_pending = 0 "
+                        "WHERE seq = ?", (report_path, error, job_seq(identifier)))
+
+    def next_report(self) -> str | None:
+        """The oldest COMPLETED job whose report is still to be built."""
+        with self._connect() as con:
+            row = con.execute("SELECT id FROM jobs WHERE phase = ? AND report_pending = 1 "
+                              "ORDER BY seq LIMIT 1", (COMPLETED,)).fetchone()
+        return row[0] if row else None
 
     def count_crash(self) -> None:
         with self._connect() as con:

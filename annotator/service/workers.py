@@ -216,14 +216,11 @@ def execute(ledger: Ledger, record, data_roots: list[Path], *, report: bool = Tr
     from ..provenance import MANIFEST
 
     rate = progress.rate(manifest["rows_read"]) or manifest.get("rows_per_second")
-    report_path, report_error = (build_job_report(job.output_dir, Path(record.folder))
-                                 if report else (None, None))
     ledger.complete(ident, manifest_path=str(Path(job.output_dir) / MANIFEST),
                     rows_done=manifest["rows_read"], rows_per_second=rate,
                     parts_done=len(manifest.get("parts", [])) or None,
                     rows_written=manifest.get("rows_written"),
-                    rows_rejected=manifest.get("rows_rejected"),
-                    report_path=report_path, report_error=report_error)
+                    rows_rejected=manifest.get("rows_rejected"), report_pending=report)
     return f"COMPLETED: {manifest['rows_read']} rows"
 
 
@@ -241,6 +238,37 @@ def build_job_report(output_dir: str | Path, folder: Path) -> tuple[str | None, 
         traceback.print_exc()
         target.unlink(missing_ok=True)
         return None, f"{type(exc).__name__}: {exc}"
+
+
+def run_report(root: str, ident: str, umask: int = 0o077) -> None:
+    """Entry point of a report process: build the report of one COMPLETED job.
+
+    A job is COMPLETED as soon as its manifest is written; its report is built afterwards, in
+    a process of its own at low priority, one at a time, so reports never hold up jobs or
+    occupy a worker slot. The outcome is written into the ledger either way.
+    """
+    os.umask(umask)
+    _exit_with_parent()
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    try:
+        os.nice(10)
+    except OSError:
+        pass
+    ledger = Ledger(root)
+    try:
+        record = ledger.get(ident)
+        if record is None or not record.manifest_path:
+            return
+        folder = Path(record.folder)
+        _redirect_output(folder)
+        t0 = time.perf_counter()
+        path, error = build_job_report(Path(record.manifest_path).parent, folder)
+        ledger.set_report(ident, path, error)
+        print(f"{time.ctime()}: {ident}: report "
+              f"{'written to ' + path if path else 'not built: ' + str(error)} "
+              f"({time.perf_counter() - t0:.1f} s)", flush=True)
+    finally:
+        ledger.close()
 
 
 # ---------------------------------------------------------------------------------------
@@ -266,6 +294,7 @@ class WorkerPool:
         self.retention = retention
         self.disk_guard = disk_guard
         self.reports = reports
+        self.reporting: dict[str, multiprocessing.process.BaseProcess] = {}
         self._last_sweep = 0.0
         self._waiting_since: dict[str, float] = {}
         self.data_roots = [str(r) for r in data_roots]
@@ -300,6 +329,10 @@ class WorkerPool:
         with self._lock:
             for run in list(self.running.values()):
                 run.process.kill()
+            for process in list(self.reporting.values()):  # resumed at the next start
+                process.kill()
+                process.join(timeout_s)
+            self.reporting.clear()
             requeued = 0
             for ident, run in list(self.running.items()):
                 run.process.join(timeout_s)
@@ -361,11 +394,13 @@ class WorkerPool:
                     self._reap()
                     self._enforce_aborts()
                     self._start_next()
+                    self._reports()
                 self._sweep()
             except Exception:  # the scheduler must outlive any one bad job
                 traceback.print_exc()
             with self._lock:
                 sentinels = [run.process.sentinel for run in self.running.values()]
+                sentinels += [p.sentinel for p in self.reporting.values()]
             ready = multiprocessing.connection.wait([self._wake_r, *sentinels], self.poll_s)
             if self._wake_r in ready:
                 os.read(self._wake_r, 4096)
@@ -377,6 +412,32 @@ class WorkerPool:
             forkserver.ensure_running()
         except Exception:
             traceback.print_exc()
+
+    def _reports(self) -> None:
+        """Reap the report process, and start the next one (one at a time)."""
+        for ident, process in list(self.reporting.items()):
+            if process.exitcode is None:
+                continue
+            process.join()
+            del self.reporting[ident]
+            if process.exitcode != 0:
+                self.ledger.set_report(ident, None, f"the report process ended "
+                                       f"({signal_name(process.exitcode)})")
+            process.close()
+        if self.reporting or not self.reports or self._stop.is_set():
+            return
+        ident = self.ledger.next_report()
+        if ident is None:
+            return
+        process = self.context.Process(target=run_report,
+                                       args=(str(self.ledger.root), ident, self.umask),
+                                       name=f"annotator-report-{ident}", daemon=False)
+        try:
+            process.start()
+        except Exception as exc:
+            self.ledger.set_report(ident, None, f"could not start a report process: {exc}")
+            return
+        self.reporting[ident] = process
 
     def _sweep(self) -> None:
         """Retention, at start and then every SWEEP_INTERVAL_S."""
@@ -477,7 +538,8 @@ class WorkerPool:
     def status(self) -> dict:
         with self._lock:
             running = {ident: run.process.pid for ident, run in self.running.items()}
-        return {"workers": self.workers, "running": running,
+            reporting = sorted(self.reporting)
+        return {"workers": self.workers, "running": running, "building_reports": reporting,
                 "queue_waiting_for_disk": bool(self._waiting_since),
                 "scheduler_alive": bool(self._thread and self._thread.is_alive())}
 
