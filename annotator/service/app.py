@@ -384,8 +384,9 @@ def _status_of(exc: UserError) -> int:
 
 def create_app(config: ServiceConfig) -> FastAPI:
     """The FastAPI application; starts the scheduler on startup, stops it on shutdown."""
-    config.root.mkdir(parents=True, exist_ok=True, mode=0o700)
-    config.jobs_dir.mkdir(exist_ok=True, mode=0o700)
+    # modes from the umask the service set (annotator/service/privacy.py)
+    config.root.mkdir(parents=True, exist_ok=True)
+    config.jobs_dir.mkdir(exist_ok=True)
     ledger = Ledger(config.root)
     privacy = privacy_for(config.group)
     pool = WorkerPool(ledger, config.data_roots, workers=config.workers,

@@ -420,6 +420,7 @@ class WorkerPool:
                 continue
             process.join()
             del self.reporting[ident]
+            self._last_sweep = 0.0
             if process.exitcode != 0:
                 self.ledger.set_report(ident, None, f"the report process ended "
                                        f"({signal_name(process.exitcode)})")
@@ -510,6 +511,7 @@ class WorkerPool:
             run.process.join()
             del self.running[ident]
             run.process.close()
+            self._last_sweep = 0.0  # a job ended: retention looks again at once
             record = self.ledger.get(ident)
             if record is None or record.phase != EXECUTING:
                 continue  # it reported its outcome, or was aborted
