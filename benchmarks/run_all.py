@@ -19,6 +19,7 @@ SCRIPTS = [
     ("bench_uncertainty.py", []),
     ("bench_sql.py", []),
     ("bench_dask.py", []),
+    ("bench_service.py", []),
 ]
 
 

@@ -93,10 +93,11 @@ def format_bytes(n) -> str:
 
 
 def short_time(iso: str | None) -> str:
-    """``2026-12-02T01:52:49.655Z`` -> ``2026-12-02 01:52:49``."""
+    """``2026-12-02T01:52:49.655Z`` -> ``12-02 01:52:49`` (UTC; the full time is in the
+    cell's title)."""
     if not iso:
         return "–"
-    return iso.replace("T", " ")[:19]
+    return iso.replace("T", " ")[5:19]
 
 
 def _inputs_of(job: dict) -> list[str]:
