@@ -11,6 +11,12 @@ Routes (every answer is JSON; errors are ``{"error": "..."}`` with a 4xx/5xx sta
   ``?limit=N`` (the N most recent).
 * ``GET /jobs/{id}`` - one job, with its manifest once COMPLETED and its history.
 * ``POST /jobs/{id}/abort`` - to ABORTED (its worker process is killed); 409 if it has ended.
+* ``DELETE /jobs/{id}`` - forget a finished or archived job and remove its folder.
+* ``GET /jobs/{id}/report`` - the job's HTML report, once built.
+* ``GET /metrics`` - OpenMetrics text (:mod:`.metrics`).
+* ``GET /``, ``/ui/...``, ``/signin``, ``/static/...`` - the status page (:mod:`.web`).
+
+Every answer carries ``X-Request-Id``; a 500 names it, and the log has the traceback under it.
 """
 
 from __future__ import annotations

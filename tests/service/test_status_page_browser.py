@@ -102,7 +102,7 @@ def test_an_operators_morning_in_a_real_browser(service, survey):
     from selenium.webdriver.common.by import By
 
     url = service.url
-    with browser() as driver:
+    with browser(width=1600, height=820) as driver:
         # -- sign-in is required on a token-protected service
         driver.get(url + "/")
         wait_for(lambda: driver.current_url.endswith("/signin"), "the sign-in page")
