@@ -150,8 +150,8 @@ _ctypes = st.sampled_from(["application/json", "application/toml", "text/plain",
 _header_values = st.text(st.characters(min_codepoint=32, max_codepoint=126), max_size=40)
 
 
-@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.too_slow,
-                                                                  HealthCheck.function_scoped_fixture])
+@settings(max_examples=150, deadline=None,
+          suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
 @given(method=st.sampled_from(["GET", "POST", "DELETE", "PUT", "HEAD", "OPTIONS"]),
        path=_paths, query=_queries, body=_bodies, ctype=_ctypes,
        extra=st.dictionaries(st.sampled_from(["Cookie", "Origin", "Accept", "Content-Length",
