@@ -38,6 +38,8 @@ class Annotator:
     * ``name``: unique identifier, the key under ``[annotators]`` in a job file.
     * ``version``: the annotator's own version, recorded in every output.
     * ``summary``: one line for ``annotator plugins``.
+    * ``documentation``: where its options and job-dependent columns are described (a page
+      or an address), shown by ``annotator plugins``.
     * ``sections``: top-level job-file tables this annotator owns (e.g. ``("bands",)``).
     * ``column_settings``: keys of ``[columns]`` that are settings, not column mappings.
     * ``input_hints``: for a logical input, catalogue column names to try when unmapped.
@@ -61,6 +63,7 @@ class Annotator:
     name: ClassVar[str] = ""
     version: ClassVar[str] = "0"
     summary: ClassVar[str] = ""
+    documentation: ClassVar[str] = ""
     sections: ClassVar[tuple[str, ...]] = ()
     column_settings: ClassVar[tuple[str, ...]] = ()
     input_hints: ClassVar[Mapping[str, Sequence[str]]] = {}
@@ -125,6 +128,16 @@ class Setup:
     base_dir: Path
     explicitly_enabled: bool = False
     allowed_roots: tuple = ()
+    why_not: str = ""
+
+    def does_not_apply(self, why: str) -> None:
+        """Say why the annotator does not apply to this job; ``configure`` returns the result.
+
+        ``return setup.does_not_apply("no [bands] table in the job")`` returns ``None``; every
+        run then prints ``annotator: <name> not applied: <why>``.
+        """
+        self.why_not = why
+        return None
 
     def error(self, key: str, why: str) -> ConfigError:
         """A ConfigError naming ``[annotators.<name>].key`` (or a section key as given)."""
@@ -169,14 +182,19 @@ class Batch:
     catalogue columns or to columns of earlier annotators.
     """
 
-    __slots__ = ("_record_batch", "_resolve", "_computed", "_flagger", "_owner", "num_rows")
+    __slots__ = ("_record_batch", "_resolve", "_computed", "_flagger", "_owner", "_shared",
+                 "num_rows")
 
-    def __init__(self, record_batch: pa.RecordBatch, resolve, computed, flagger, owner: str):
+    def __init__(self, record_batch: pa.RecordBatch, resolve, computed, flagger, owner: str,
+                 shared: dict | None = None):
         self._record_batch = record_batch
         self._resolve = resolve
         self._computed = computed
         self._flagger = flagger
         self._owner = owner
+        # one dict per batch, shared by every annotator's view of it: float values and
+        # derived arrays are computed once per batch, not once per annotator
+        self._shared = {} if shared is None else shared
         self.num_rows = record_batch.num_rows
 
     def has(self, name: str) -> bool:
@@ -197,18 +215,43 @@ class Batch:
         return self._record_batch.column(column)
 
     def values(self, name: str) -> np.ndarray:
-        """The column as float64 numpy values, NaN where null (read-only view when possible)."""
+        """The column as float64 numpy values, NaN where null. Read-only: the same array is
+        handed to every annotator that reads this column in this batch (copy it to change it).
+        """
         kind, column = self._target(name)
         if kind == "computed":
             entry = self._computed[column]
             if entry[1] is None:
-                entry[1] = _as_float(entry[0])
+                entry[1] = _read_only(_as_float(entry[0]))
             return entry[1]
-        return _as_float(self._record_batch.column(column))
+        key = ("values", column)
+        found = self._shared.get(key)
+        if found is None:
+            found = self._shared[key] = _read_only(_as_float(self._record_batch.column(column)))
+        return found
+
+    def derived(self, name: str, function) -> np.ndarray:
+        """``function(self.values(name))``, computed once per batch for every annotator that
+        asks for the same function of the same column (e.g. the usable redshifts).
+
+        :param function: a module-level function of one float64 array; its result is made
+            read-only and shared, so it must not depend on anything but its argument.
+        """
+        kind, column = self._target(name)
+        key = ("derived", kind, column, function)
+        found = self._shared.get(key)
+        if found is None:
+            found = self._shared[key] = _read_only(np.asarray(function(self.values(name))))
+        return found
 
     def flag(self, reason: str, mask: np.ndarray) -> None:
         """Add ``reason`` to ``annotation_flags`` of the rows where ``mask`` is true."""
         self._flagger(self._owner, reason, mask)
+
+
+def _read_only(values: np.ndarray) -> np.ndarray:
+    values.flags.writeable = False
+    return values
 
 
 def _as_float(arr: pa.Array) -> np.ndarray:

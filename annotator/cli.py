@@ -44,7 +44,13 @@ def main(argv: list[str] | None = None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     wanted = next((a for a in argv if a in COMMANDS), None)
     parser = build_parser(only=wanted)
-    args = parser.parse_args(argv)
+    args, extra = parser.parse_known_args(argv)
+    if extra:  # a command may take a positional given after its options (query's SQL)
+        take = getattr(_command_module(args.command), "take_extra", None) if args.command \
+            else None
+        if take is None or not take(args, extra):
+            parser.parse_args(argv)  # the usual one-line error, exit 2
+    args._argv = argv  # the command as typed (run prints the exact --resume command)
     if not args.command:
         parser.print_help()
         return 2

@@ -10,6 +10,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from .api import Batch
 from .columns import FLAGS_COLUMN
@@ -82,8 +83,9 @@ class Pipeline:
                                   f"{mask.shape}, expected ({n},)")
             bits[bit // 64][mask] |= np.uint64(1 << (bit % 64))
 
+        shared: dict = {}
         for step in self.steps:
-            batch = Batch(table, step.resolve, computed, flagger, step.name)
+            batch = Batch(table, step.resolve, computed, flagger, step.name, shared)
             try:
                 result = step.annotator.annotate(batch)
             except PluginError:
@@ -111,27 +113,39 @@ class Pipeline:
         return out, counts, flagged
 
     def _flags(self, bits: np.ndarray) -> tuple[pa.Array, dict[str, int]]:
+        """The flags column and the rows per reason, without sorting the batch.
+
+        Clean rows (most of a catalogue) are code 0 and never looked at again; the flagged
+        rows' bit patterns are grouped by Arrow's hash-based dictionary encoding, so the cost
+        is one pass over the flagged rows, not a sort of all of them.
+        """
         n = bits.shape[1]
         counts: dict[str, int] = {}
         if n == 0:
             return pa.array([], type=pa.string()), counts
-        if bits.shape[0] == 1:
-            codes, inverse = np.unique(bits[0], return_inverse=True)
-            combos = [(int(c),) for c in codes]
-        else:
-            view = np.ascontiguousarray(bits.T).view([("", np.uint64)] * bits.shape[0]).ravel()
-            codes, inverse = np.unique(view, return_inverse=True)
-            combos = [tuple(int(x) for x in c) for c in codes]
+        flagged = np.flatnonzero(bits.any(axis=0))
+        indices = np.zeros(n, dtype=np.int32)
+        combos: list[tuple[int, ...]] = [(0,) * bits.shape[0]]
+        if len(flagged):
+            if bits.shape[0] == 1:
+                encoded = pc.dictionary_encode(pa.array(bits[0][flagged]))
+                uniques = encoded.dictionary.to_numpy()
+                combos += [(int(c),) for c in uniques]
+                indices[flagged] = encoded.indices.to_numpy() + 1
+            else:  # more than 64 reasons: group whole rows of words (rare; sorts flagged rows)
+                rows = np.ascontiguousarray(bits[:, flagged].T)
+                uniques, inverse = np.unique(rows, axis=0, return_inverse=True)
+                combos += [tuple(int(x) for x in u) for u in uniques]
+                indices[flagged] = inverse.ravel() + 1
+        per_combo = np.bincount(indices, minlength=len(combos))
         labels = []
-        per_combo = np.bincount(inverse.ravel(), minlength=len(combos))
         for combo, count in zip(combos, per_combo):
             reasons = [r for r, b in self.flag_bits.items() if (combo[b // 64] >> (b % 64)) & 1]
             labels.append(FLAG_SEPARATOR.join(reasons))
             for r in reasons:
                 counts[r] = counts.get(r, 0) + int(count)
         dictionary = pa.array(labels, type=pa.string())
-        arr = pa.DictionaryArray.from_arrays(pa.array(inverse.ravel().astype(np.int32)),
-                                             dictionary)
+        arr = pa.DictionaryArray.from_arrays(pa.array(indices), dictionary)
         return arr.cast(FLAGS_COLUMN.type), counts
 
 

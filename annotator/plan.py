@@ -137,7 +137,9 @@ def build_plan(job: Job, pm=None) -> Plan:
         if enabled is None:
             enabled = reg.cls.enabled_by_default
         if not enabled:
-            skipped.append((reg.cls.name, "disabled"))
+            skipped.append((reg.cls.name, f"disabled ([annotators] {reg.cls.name} = false)"
+                            if entry["enabled"] is False else
+                            f"off by default ([annotators] {reg.cls.name} = true enables it)"))
             continue
         setup = Setup(
             annotator_name=reg.cls.name,
@@ -152,12 +154,10 @@ def build_plan(job: Job, pm=None) -> Plan:
         )
         instance = reg.cls.configure(setup)
         if instance is None:
+            why = setup.why_not or "it does not apply to this job (it gave no reason)"
             if entry["enabled"] is True:
-                raise ConfigError(
-                    f"[annotators].{reg.cls.name}: enabled, but it does not apply to this job "
-                    f"(see its documentation for what it needs)"
-                )
-            skipped.append((reg.cls.name, "not applicable to this job"))
+                raise ConfigError(f"[annotators].{reg.cls.name}: enabled, but not applied: {why}")
+            skipped.append((reg.cls.name, why))
             continue
         configured.append((instance, reg))
 

@@ -79,22 +79,17 @@ def votable_header(schema: pa.Schema, specs: dict, *, table_name: str, descripti
 
 
 def tool_versions() -> dict:
-    import duckdb
-    import numpy
-    import pandas
-    import pluggy
-    import scipy
+    """Versions of the libraries a run depends on, read from their installed metadata
+    (importing pandas, scipy and duckdb only to ask would cost most of a small run's start-up)."""
+    from importlib.metadata import PackageNotFoundError, version
 
-    return {
-        "annotator": __version__,
-        "python": platform.python_version(),
-        "numpy": numpy.__version__,
-        "scipy": scipy.__version__,
-        "pyarrow": pa.__version__,
-        "pandas": pandas.__version__,
-        "pluggy": pluggy.__version__,
-        "duckdb": duckdb.__version__,
-    }
+    versions = {"annotator": __version__, "python": platform.python_version()}
+    for name in ("numpy", "scipy", "pyarrow", "pandas", "pluggy", "duckdb"):
+        try:
+            versions[name] = version(name)
+        except PackageNotFoundError:  # pragma: no cover - every one is a dependency
+            versions[name] = "not installed"
+    return versions
 
 
 def provenance_record(plan) -> dict:

@@ -55,8 +55,9 @@ def synthetic_catalogue(path: Path, rows: int, *, seed: int = 1, chunk: int = 1_
     return path
 
 
-def measured(cmd: list[str], **kw) -> tuple[float, float]:
-    """Run a command; return (wall seconds, peak RSS of that child in MiB).
+def measured(cmd: list[str], *, cpu: bool = False, **kw):
+    """Run a command; return (wall seconds, peak RSS of that child in MiB), and with
+    ``cpu=True`` also its user + system CPU seconds.
 
     Each measured command runs in its own wrapper process so ru_maxrss is its own peak.
     """
@@ -65,14 +66,16 @@ def measured(cmd: list[str], **kw) -> tuple[float, float]:
                "t = time.perf_counter();"
                "r = subprocess.run(sys.argv[1:]);"
                "dt = time.perf_counter() - t;"
-               "peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss;"
-               "print(f'@@ {dt} {peak}', file=sys.stderr);"
+               "u = resource.getrusage(resource.RUSAGE_CHILDREN);"
+               "print(f'@@ {dt} {u.ru_maxrss} {u.ru_utime + u.ru_stime}', file=sys.stderr);"
                "sys.exit(r.returncode)", *cmd]
     proc = subprocess.run(wrapper, capture_output=True, text=True, **kw)
     if proc.returncode != 0:
         raise RuntimeError(f"{' '.join(cmd)} failed:\n{proc.stderr[-2000:]}")
     line = [ln for ln in proc.stderr.splitlines() if ln.startswith("@@ ")][-1]
-    _, dt, peak_kib = line.split()
+    _, dt, peak_kib, cpu_s = line.split()
+    if cpu:
+        return float(dt), float(peak_kib) / 1024.0, float(cpu_s)
     return float(dt), float(peak_kib) / 1024.0
 
 

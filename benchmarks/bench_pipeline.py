@@ -1,18 +1,29 @@
 """Pipeline throughput and memory against the I/O floor, measured in the same run.
 
-For each catalogue size: ``annotator run`` Parquet -> Parquet with every built-in annotator,
-then the I/O floor: read the annotated output and write it again with pyarrow, same codec
-and encoding options, no annotation. Peak memory is each process's own maximum RSS. A CSV input is timed too.
+For each catalogue size, in interleaved rounds (best and median reported):
 
-    python benchmarks/bench_pipeline.py                     # 2 M and 10 M rows
-    python benchmarks/bench_pipeline.py --rows 200000       # quick
+* ``annotator run`` Parquet -> Parquet with every built-in annotator and two part writers
+  (the default), and with one part writer (``ANNOTATOR_WRITER_THREADS=1``, the previous engine);
+* the I/O floor: read the annotated output and write it again with pyarrow in one thread, same
+  codec and encoding options, no annotation (a single-writer copy of the same bytes).
+
+Peak memory is each process's own maximum RSS; CPU is its user + system time.
+``--encodings`` also compares, on one annotated part, the float encodings the writer could use
+(plain vs BYTE_STREAM_SPLIT, with zstd): bytes per row, write time, and read time by pyarrow
+and by DuckDB.
+
+    python benchmarks/bench_pipeline.py                     # 5 M and 20 M rows
+    python benchmarks/bench_pipeline.py --rows 200000 --rounds 1   # quick
 """
 
 from __future__ import annotations
 
 import argparse
+import os
 import shutil
+import statistics
 import sys
+import time
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
@@ -32,40 +43,105 @@ for i, path in enumerate(sorted(glob.glob(os.path.join(src, "part-*.parquet"))))
 """
 
 
+def _run(src: Path, out: Path, chunk_rows: int, writers: int) -> tuple[float, float, float]:
+    shutil.rmtree(out, ignore_errors=True)
+    env = dict(os.environ, ANNOTATOR_WRITER_THREADS=str(writers))
+    return measured(annotator_cmd("run", str(src), "--out", str(out), "--quiet",
+                                  "--chunk-rows", str(chunk_rows)), env=env, cpu=True)
+
+
+def pipeline(rows: int, rounds: int, chunk_rows: int, codec: str) -> None:
+    src = synthetic_catalogue(DATA / f"bench_{rows}.parquet", rows)
+    out = OUT / f"pipeline_{rows}"
+    copy = OUT / f"pipeline_{rows}_copy"
+    times: dict[str, list[tuple[float, float, float]]] = {"two writers": [], "one writer": [],
+                                                          "I/O floor": []}
+    for _ in range(rounds):
+        times["one writer"].append(_run(src, out, chunk_rows, 1))
+        times["two writers"].append(_run(src, out, chunk_rows, 2))
+        shutil.rmtree(copy, ignore_errors=True)
+        times["I/O floor"].append(measured(python_cmd(IO_FLOOR, str(out), str(copy), codec),
+                                           cpu=True))
+    size = sum(p.stat().st_size for p in out.glob("part-*.parquet"))
+    shutil.rmtree(copy, ignore_errors=True)
+    shutil.rmtree(out, ignore_errors=True)
+    floor_best = min(t for t, _, _ in times["I/O floor"])
+    floor_median = statistics.median(t for t, _, _ in times["I/O floor"])
+    print(f"\n{rows:,} rows, chunks of {chunk_rows:,}, {rounds} interleaved rounds; output "
+          f"{size / rows:.1f} bytes/row; load average "
+          f"{', '.join(f'{v:.1f}' for v in os.getloadavg())}")
+    print(f"  {'':<12} {'best s':>8} {'median s':>9} {'rows/s':>11} {'CPU s':>7} "
+          f"{'peak MiB':>9} {'best/floor':>10} {'median/floor':>12}")
+    for label, runs in times.items():
+        walls = [t for t, _, _ in runs]
+        best, median = min(walls), statistics.median(walls)
+        cpu = min(c for _, _, c in runs)
+        peak = max(p for _, p, _ in runs)
+        print(f"  {label:<12} {best:>8.2f} {median:>9.2f} {rows / best:>11,.0f} {cpu:>7.2f} "
+              f"{peak:>9.0f} {best / floor_best:>10.2f} {median / floor_median:>12.2f}",
+              flush=True)
+
+
+ENCODINGS = r"""
+import glob, io, sys, time
+import duckdb, pyarrow as pa, pyarrow.parquet as pq
+from annotator.io.writer import parquet_write_options
+part = sorted(glob.glob(sys.argv[1] + "/part-*.parquet"))[0]
+table = pq.read_table(part)
+floats = [f.name for f in table.schema if pa.types.is_floating(f.type)]
+con = duckdb.connect()
+sums = ", ".join(f'sum("{c}")' for c in floats)
+print(f"  one part of {table.num_rows:,} rows, {len(floats)} float columns of {table.num_columns}")
+print(f"  {'float encoding':<28} {'bytes/row':>9} {'write ms':>9} {'pyarrow read ms':>16} "
+      f"{'DuckDB scan ms':>15}")
+for label, bss in (("plain (previous)", False), ("BYTE_STREAM_SPLIT (chosen)", floats)):
+    opts = dict(parquet_write_options(table.schema, "zstd"), use_byte_stream_split=bss)
+    w = r = d = 1e9
+    for _ in range(5):
+        buf = io.BytesIO()
+        t = time.perf_counter(); pq.write_table(table, buf, row_group_size=table.num_rows, **opts)
+        w = min(w, time.perf_counter() - t)
+        data = buf.getvalue()
+        t = time.perf_counter(); pq.read_table(pa.BufferReader(data)); r = min(r, time.perf_counter() - t)
+    path = sys.argv[2] + f"/enc_{bool(bss)}.parquet"
+    open(path, "wb").write(data)
+    for _ in range(5):
+        t = time.perf_counter(); con.execute(f"SELECT {sums} FROM read_parquet('{path}')").fetchall()
+        d = min(d, time.perf_counter() - t)
+    print(f"  {label:<28} {len(data) / table.num_rows:>9.1f} {w * 1e3:>9.1f} {r * 1e3:>16.1f} "
+          f"{d * 1e3:>15.1f}")
+"""
+
+
+def encodings(chunk_rows: int) -> None:
+    rows = chunk_rows
+    src = synthetic_catalogue(DATA / f"bench_{rows}.parquet", rows)
+    out = OUT / "pipeline_encodings"
+    _run(src, out, chunk_rows, 2)
+    print("\nfloat encodings (best of 5 each):")
+    import subprocess
+
+    subprocess.run(python_cmd(ENCODINGS, str(out), str(OUT)), check=True)
+    shutil.rmtree(out, ignore_errors=True)
+    for p in OUT.glob("enc_*.parquet"):
+        p.unlink()
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("--rows", default="2000000,10000000",
-                    help="comma-separated catalogue sizes (default 2M and 10M)")
-    ap.add_argument("--csv-rows", type=int, default=1_000_000)
+    ap.add_argument("--rows", default="5000000,20000000",
+                    help="comma-separated catalogue sizes (default 5 M and 20 M)")
+    ap.add_argument("--rounds", type=int, default=3)
     ap.add_argument("--chunk-rows", type=int, default=250_000)
     ap.add_argument("--codec", default="zstd")
+    ap.add_argument("--no-encodings", action="store_true")
     args = ap.parse_args()
-
-    print(f"{'rows':>11} {'annotate s':>10} {'rows/s':>12} {'peak MiB':>9} "
-          f"{'I/O floor s':>11} {'ratio':>6}")
+    t0 = time.perf_counter()
     for rows in [int(r) for r in args.rows.split(",")]:
-        src = synthetic_catalogue(DATA / f"bench_{rows}.parquet", rows)
-        out = OUT / f"pipeline_{rows}"
-        shutil.rmtree(out, ignore_errors=True)
-        t_ann, peak = measured(annotator_cmd("run", str(src), "--out", str(out), "--quiet",
-                                             "--chunk-rows", str(args.chunk_rows)))
-        copy = OUT / f"pipeline_{rows}_copy"
-        shutil.rmtree(copy, ignore_errors=True)
-        t_io, peak_io = measured(python_cmd(IO_FLOOR, str(out), str(copy), args.codec))
-        print(f"{rows:>11,} {t_ann:>10.2f} {rows / t_ann:>12,.0f} {peak:>9.0f} "
-              f"{t_io:>11.2f} {t_ann / t_io:>6.2f}", flush=True)
-        shutil.rmtree(copy, ignore_errors=True)
-        shutil.rmtree(out, ignore_errors=True)
-
-    if args.csv_rows:
-        src = synthetic_catalogue(DATA / f"bench_{args.csv_rows}.csv", args.csv_rows, fmt="csv")
-        out = OUT / "pipeline_csv"
-        shutil.rmtree(out, ignore_errors=True)
-        t_csv, peak = measured(annotator_cmd("run", str(src), "--out", str(out), "--quiet",
-                                             "--chunk-rows", str(args.chunk_rows)))
-        print(f"CSV input: {args.csv_rows:,} rows in {t_csv:.2f} s = "
-              f"{args.csv_rows / t_csv:,.0f} rows/s, peak {peak:.0f} MiB")
-        shutil.rmtree(out, ignore_errors=True)
+        pipeline(rows, args.rounds, args.chunk_rows, args.codec)
+    if not args.no_encodings:
+        encodings(args.chunk_rows)
+    print(f"\n(bench_pipeline: {time.perf_counter() - t0:.0f} s)")
 
 
 if __name__ == "__main__":

@@ -94,6 +94,16 @@ def main(argv=None) -> int:
                  lambda: s.copy_to("SELECT objid, luminosity_distance_mpc(z) AS dl FROM "
                                    "catalogue", "parquet", overwrite=True), n),
             ]
+            # the previous code: the same Arrow UDF without the one-call-at-a-time lock
+            from annotator.sql.session import arrow_udf
+
+            fn_dc = s.functions["comoving_distance_mpc"][0]
+            s.con.create_function("dc_without_call_lock",
+                                  arrow_udf(fn_dc, one_call_at_a_time=False), ["DOUBLE"],
+                                  "DOUBLE", type="arrow", null_handling="special",
+                                  side_effects=False)
+            cases.insert(2, ("Arrow UDF without the call lock (previous code)",
+                             q("SELECT sum(dc_without_call_lock(z)) FROM catalogue"), n))
             for label, fn, rows in cases:
                 secs, value = best_of(args.repeats, fn)
                 results.append({"case": label, "rows": rows, "seconds": secs,

@@ -36,7 +36,7 @@ class CosmologicalAnnotator(Annotator):
         return cls(setup.cosmology)
 
     def annotate(self, batch):
-        return self.compute(usable_redshift(batch.values("redshift")))
+        return self.compute(batch.derived("redshift", usable_redshift))
 
     def compute(self, z: np.ndarray) -> dict:
         raise NotImplementedError

@@ -12,6 +12,7 @@ from ._redshift import REDSHIFT_HINTS
 class RedshiftChecks(Annotator):
     name = "redshift_checks"
     version = "1.0"
+    documentation = "docs/output.md"
     summary = "Flags rows with a missing, non-finite or negative (blueshifted) redshift."
     position = 5
     input_hints = {"redshift": REDSHIFT_HINTS}

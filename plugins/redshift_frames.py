@@ -228,6 +228,7 @@ _ERROR_COLUMNS = {
 class RedshiftFrames(Annotator):
     name = "redshift_frames"
     version = "1.0"
+    documentation = "docs/frames-and-uncertainties.md"
     summary = "CMB-frame redshift from a heliocentric one (relativistic, CMB dipole); " \
               "used by every later annotator."
     position = 2
@@ -264,7 +265,8 @@ class RedshiftFrames(Annotator):
             if dipole_given:
                 raise ConfigError('[columns].cmb_dipole: only used with [columns] '
                                   'redshift_frame = "heliocentric"')
-            return None
+            return setup.does_not_apply('no [columns] redshift_frame: the redshifts are used '
+                                        'as given (set "heliocentric" to convert to the CMB frame)')
         if frame not in FRAMES:
             raise ConfigError(f"[columns].redshift_frame: {frame!r} is not one of "
                               f"{', '.join(repr(f) for f in FRAMES)}")
@@ -274,7 +276,8 @@ class RedshiftFrames(Annotator):
             if dipole_given:
                 raise ConfigError('[columns].cmb_dipole: only used with redshift_frame = '
                                   '"heliocentric" (this job says "cmb")')
-            return None
+            return setup.does_not_apply('redshift_frame = "cmb": the redshifts are already in '
+                                        'the CMB frame')
         return cls(parse_dipole(setup.columns.get("cmb_dipole")), error_inputs(setup))
 
     def annotate(self, batch):

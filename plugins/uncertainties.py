@@ -34,7 +34,6 @@ import math
 
 import numpy as np
 import pyarrow as pa
-from scipy.special import ndtr
 
 from annotator import Annotator, ColumnSpec, hookimpl
 from annotator.errors import ConfigError
@@ -152,6 +151,14 @@ PHI_IS_ZERO = -38.5
 TRUNCATION_NEGLIGIBLE_P = 0.05
 
 
+def ndtr(x: np.ndarray) -> np.ndarray:
+    """scipy.special.ndtr, imported on first use (scipy.special costs ~0.2 s to import, which
+    every run would otherwise pay at plugin discovery)."""
+    from scipy.special import ndtr as scipy_ndtr
+
+    return scipy_ndtr(x)
+
+
 def _phi(a: np.ndarray) -> np.ndarray:
     """Standard normal CDF (scipy.special.ndtr), skipping the rows where it is exactly 0 or 1."""
     with np.errstate(invalid="ignore"):
@@ -229,6 +236,7 @@ def reachable_probability_split(z: np.ndarray, lower: np.ndarray, upper: np.ndar
 class Uncertainties(Annotator):
     name = "uncertainties"
     version = "1.0"
+    documentation = "docs/frames-and-uncertainties.md"
     summary = "Errors of distances, distance modulus and times propagated from the redshift " \
               "error; probability of being reachable."
     position = 50
@@ -269,7 +277,8 @@ class Uncertainties(Annotator):
             raise setup.error("truncate_at_zero", f"expected true or false, got {truncate!r}")
         errors = error_inputs(setup)
         if not errors:
-            return None
+            return setup.does_not_apply("no redshift error column (map [columns] redshift_error, "
+                                        "or redshift_error_lower and redshift_error_upper)")
         return cls(setup.cosmology, errors, truncate)
 
     def prepare(self):

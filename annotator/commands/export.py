@@ -11,7 +11,7 @@ from ..errors import ConfigError
 
 def add_arguments(p) -> None:
     p.add_argument("folder", metavar="DIR", help="annotated output folder")
-    p.add_argument("--duckdb", metavar="FILE", help="the DuckDB database file to write")
+    p.add_argument("--duckdb", metavar="FILE", required=True, help="the DuckDB database file to write")
     p.add_argument("--overwrite", action="store_true", help="replace an existing FILE")
 
 

@@ -11,6 +11,14 @@ def add_arguments(p) -> None:
     p.add_argument("--json", action="store_true", help="machine-readable output")
 
 
+def _columns_note(cls) -> str:
+    where = f"; see {cls.documentation}" if cls.documentation else ""
+    if cls.flags:  # flags declared on the class: a checking annotator with no columns
+        return f"no columns: it adds the flags {', '.join(cls.flags)} to annotation_flags" + where
+    return ("columns depend on the job: `annotator run --config JOB.toml --dry-run` lists them"
+            + where)
+
+
 def _describe(reg) -> dict:
     cls = reg.cls
     columns = [c.to_dict() for c in getattr(cls, "provides", ())]
@@ -23,7 +31,8 @@ def _describe(reg) -> dict:
         "class": cls.origin(),
         "enabled_by_default": cls.enabled_by_default,
         "columns": columns,
-        "columns_note": None if columns else "columns depend on the job (see its documentation)",
+        "documentation": cls.documentation or None,
+        "columns_note": None if columns else _columns_note(cls),
     }
 
 

@@ -44,6 +44,14 @@ def add_arguments(p) -> None:
                    help=f"rows shown in table format (default {DEFAULT_MAX_ROWS})")
 
 
+def take_extra(args, extra: list[str]) -> bool:
+    """Accept the SQL after the options (``query DIR --selection x "SQL"``)."""
+    if args.sql is None and len(extra) == 1 and not extra[0].startswith("-"):
+        args.sql = extra[0]
+        return True
+    return False
+
+
 def _pairs(items: list[str], option: str) -> dict[str, str]:
     out: dict[str, str] = {}
     for item in items:

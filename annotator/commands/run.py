@@ -2,11 +2,15 @@
 
 from __future__ import annotations
 
+import shlex
+import signal
 import sys
+import threading
 import time
+from pathlib import Path
 
 from ..config import load_job
-from ..errors import ConfigError
+from ..errors import ConfigError, OutputError, UserError
 from ..plan import build_plan, describe_plan
 from ..runner import ENGINES, run_plan
 
@@ -24,7 +28,10 @@ def add_arguments(p) -> None:
                    help="continue an interrupted run of the same job in DIR")
     p.add_argument("--dry-run", action="store_true",
                    help="print the plan without reading any rows")
-    p.add_argument("--engine", choices=ENGINES, default="local")
+    p.add_argument("--engine", choices=ENGINES, default="local",
+                   help="local: this process, reading, annotating and writing in three threads "
+                        "(default); dask: one task per chunk on a Dask cluster (--scheduler, "
+                        "--workers; see docs/dask.md)")
     p.add_argument("--scheduler", metavar="ADDRESS", help="Dask scheduler address (dask engine)")
     p.add_argument("--workers", type=int, metavar="N",
                    help="dask engine: worker processes of the local cluster it starts; with "
@@ -62,9 +69,74 @@ class _Reporter:
     def close(self) -> None:
         if self.bar is not None:
             self.bar.close()
+            self.bar = None
+
+
+def resume_command(args) -> str:
+    """The command that continues this run: as typed, without --overwrite, with --resume."""
+    argv = list(getattr(args, "_argv", None) or sys.argv[1:])
+    kept = [a for a in argv if a not in ("--overwrite", "--dry-run", "--resume")]
+    return shlex.join(["annotator", *kept, "--resume"])
+
+
+class _Interruptions:
+    """Ctrl-C (SIGINT) and SIGTERM alike: the first one finishes the part in progress, commits
+    it and stops; a second one abandons the part in progress at once (``--resume`` redoes it).
+    Installed only around the run, in the main thread; the previous handlers come back after.
+    """
+
+    SIGNALS = (signal.SIGINT, signal.SIGTERM)
+
+    def __init__(self):
+        self.event = threading.Event()
+        self.received: str | None = None
+        self.previous = {}
+
+    def _handle(self, signum, frame) -> None:
+        name = signal.Signals(signum).name
+        if self.event.is_set():
+            raise KeyboardInterrupt(name)
+        self.received = name
+        self.event.set()
+        print(f"annotator: {name} received: finishing the part in progress, then stopping "
+              f"(send it again to stop at once)", file=sys.stderr, flush=True)
+
+    def __enter__(self):
+        if threading.current_thread() is threading.main_thread():
+            for s in self.SIGNALS:
+                self.previous[s] = signal.signal(s, self._handle)
+        return self
+
+    def __exit__(self, *exc) -> None:
+        for s, handler in self.previous.items():
+            signal.signal(s, handler)
+
+    @property
+    def exit_code(self) -> int:
+        return 128 + int(getattr(signal, self.received or "SIGINT"))
+
+
+def _stopped_message(args, out, how: str) -> str:
+    from ..io.checkpoint import CheckpointLog
+
+    records = CheckpointLog(Path(out)).records()
+    rows = sum(r["rows_read"] for r in records)
+    return (f"annotator: {how}; {len(records)} parts ({rows} rows) are committed in {out}. "
+            f"Continue with: {resume_command(args)}")
+
+
+def _check_engine_options(args) -> None:
+    """--scheduler and --workers belong to the dask engine: refused with any other."""
+    if args.engine != "dask":
+        given = [o for o, v in (("--scheduler", args.scheduler), ("--workers", args.workers))
+                 if v is not None]
+        if given:
+            raise ConfigError(f"{given[0]}: only used with --engine dask (this run uses the "
+                              f"{args.engine} engine); add --engine dask or drop {given[0]}")
 
 
 def main(args) -> int:
+    _check_engine_options(args)
     job = load_job(
         args.config,
         inputs=args.inputs or None,
@@ -82,6 +154,8 @@ def main(args) -> int:
     if job.cosmology_is_default:
         print(f"annotator: cosmology {job.cosmology['preset']} (the default; choose with "
               f"--cosmology or [cosmology])", file=sys.stderr)
+    for name, why in plan.skipped:
+        print(f"annotator: {name} not applied: {why}", file=sys.stderr)
     if args.dry_run:
         print(describe_plan(plan))
         return 0
@@ -90,12 +164,36 @@ def main(args) -> int:
     engine_options = {}
     if args.engine == "dask":
         engine_options = {"scheduler": args.scheduler, "workers": args.workers}
+    if not args.resume and not job.overwrite:
+        from ..engines.common import interrupted_run
+
+        stopped = interrupted_run(job.output_dir, job.fingerprint())
+        if stopped is not None and stopped[0]:
+            raise OutputError(f"output {job.output_dir}: holds an interrupted run of this job "
+                              f"({stopped[1]} parts committed); continue it with: "
+                              f"{resume_command(args)}  (or start again with --overwrite)")
     reporter = _Reporter(plan.estimated_rows, args.quiet)
-    try:
-        manifest = run_plan(plan, engine=args.engine, progress=reporter, resume=args.resume,
-                            engine_options=engine_options)
-    finally:
-        reporter.close()
+    with _Interruptions() as stops:
+        try:
+            manifest = run_plan(plan, engine=args.engine, progress=reporter,
+                                resume=args.resume, cancel=stops.event,
+                                engine_options=engine_options)
+        except KeyboardInterrupt as exc:
+            reporter.close()
+            how = f"{exc.args[0] if exc.args else 'SIGINT'} received again" \
+                if stops.received else "interrupted"
+            print(_stopped_message(args, job.output_dir, f"{how}: the part in progress was "
+                                   f"abandoned"), file=sys.stderr)
+            return stops.exit_code
+        except UserError:
+            if not stops.event.is_set():
+                raise
+            reporter.close()
+            print(_stopped_message(args, job.output_dir, f"stopped by {stops.received} after "
+                                   f"finishing the part in progress"), file=sys.stderr)
+            return stops.exit_code
+        finally:
+            reporter.close()
     print(f"annotator: read {manifest['rows_read']} rows, wrote {manifest['rows_written']}, "
           f"set aside {manifest['rows_rejected']} (flagged {manifest['rows_flagged']}) in "
           f"{manifest['elapsed_s']:.1f} s", file=sys.stderr)

@@ -15,7 +15,7 @@ def add_arguments(p) -> None:
 
     p.add_argument("--root", required=True, metavar="DIR",
                    help="service root: the job ledger and one folder per job (created if absent)")
-    p.add_argument("--data-root", action="append", default=[], metavar="PATH", dest="data_roots",
+    p.add_argument("--data-root", action="append", required=True, metavar="PATH", dest="data_roots",
                    help="folder inputs may be read from (repeat for several); required")
     p.add_argument("--host", default="127.0.0.1",
                    help="address to listen on (default 127.0.0.1; anything but loopback "

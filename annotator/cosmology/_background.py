@@ -10,7 +10,6 @@ from __future__ import annotations
 import math
 
 import numpy as np
-from scipy.special import zeta
 
 from . import constants as k
 
@@ -22,7 +21,8 @@ from . import constants as k
 # good to a few 1e-3, so the fifth digit carries no physics.  We use the printed value,
 # as other implementations of the same published formula do.
 KOMATSU_A = 0.3173
-KOMATSU_A_EXACT = 180.0 * float(zeta(3.0)) / (7.0 * math.pi**4)  # for reference only
+APERY_ZETA3 = 1.2020569031595942  # zeta(3), Apery's constant (OEIS A002117)
+KOMATSU_A_EXACT = 180.0 * APERY_ZETA3 / (7.0 * math.pi**4)  # for reference only
 KOMATSU_P = 1.83
 
 # A curvature density this small is treated as exactly flat (it is rounding noise

@@ -8,7 +8,6 @@ import threading
 from collections.abc import Mapping, Sequence
 
 import numpy as np
-from scipy.optimize import minimize_scalar
 
 from . import constants as k
 from ._background import Background
@@ -185,6 +184,8 @@ class Cosmology:
             j = int(np.argmin(np.where(part, adot2, np.inf)))
             if adot2[j] < 0.05 and 0 < j < len(xs) - 1:
                 try:
+                    from scipy.optimize import minimize_scalar  # only for this rare search
+
                     res = minimize_scalar(bg.e2_linear, bounds=(xs[j - 1], xs[j + 1]),
                                           method="bounded", options={"xatol": 1e-10})
                     if res.fun <= 0.0:

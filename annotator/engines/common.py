@@ -65,6 +65,23 @@ def _is_owned(p: Path) -> bool:
     return p.name in OWNED or (p.name.startswith("part-") and ".parquet" in p.name)
 
 
+def interrupted_run(out: Path, fingerprint: dict) -> tuple[bool, int] | None:
+    """``(same_job, parts_committed)`` when ``out`` holds a run that never finished, else None.
+
+    An interrupted run has its job record in ``_state/`` but no manifest yet.
+    """
+    out = Path(out)
+    job_file = out / STATE_DIR / JOB_FILE
+    if not job_file.is_file() or (out / MANIFEST).exists():
+        return None
+    try:
+        recorded = json.loads(job_file.read_text())
+    except (OSError, ValueError):
+        return None
+    same = recorded == json.loads(json.dumps(fingerprint, default=str))
+    return same, len(CheckpointLog(out).records())
+
+
 def prepare_output(plan, *, resume: bool) -> CheckpointLog:
     """Make the output folder ready; refuse to mix runs.
 
@@ -97,6 +114,11 @@ def prepare_output(plan, *, resume: bool) -> CheckpointLog:
             log.start()
             return log
         if not plan.job.overwrite:
+            stopped = interrupted_run(out, fingerprint)
+            if stopped is not None and stopped[0]:
+                raise OutputError(f"output {out}: holds an interrupted run of this job "
+                                  f"({stopped[1]} parts committed); continue it with --resume "
+                                  f"(or start again with --overwrite)")
             raise OutputError(f"output {out}: folder is not empty; use --overwrite to replace "
                               f"an earlier annotated output, or choose another --out")
         foreign = [p.name for p in existing if not _is_owned(p)]

@@ -1,12 +1,17 @@
 """The local engine: one machine, three overlapping stages.
 
-A reader thread parses the next chunk while the main thread annotates the current one and a
-writer thread commits the previous one (Arrow's readers and writers release the GIL), so a
-run costs little more than its I/O. Memory is bounded by a few chunks in flight.
+A reader thread parses the next chunk while the main thread annotates the current one and
+``WRITERS`` writer threads commit the previous ones (Arrow's readers and writers release the
+GIL, and encoding + compressing a part is the largest single cost of a run, so two writers
+keep both cores busy). Parts are committed to the checkpoint in chunk order whatever order the
+writers finish in, and chunk k always becomes the same part file, so resume is unchanged.
+Memory is bounded by the chunks in flight: ``PREFETCH`` read ahead, one being annotated and
+at most ``WRITERS`` being written.
 """
 
 from __future__ import annotations
 
+import os
 import queue
 import threading
 import time
@@ -19,6 +24,8 @@ from ..provenance import file_sha256, now_iso, part_metadata
 from .common import CommitLog, committed_chunks, finish, prepare_output, write_chunk
 
 _DONE = object()
+WRITERS = int(os.environ.get("ANNOTATOR_WRITER_THREADS", "2"))
+PREFETCH = 2
 
 
 def _prefetch(iterable, depth: int):
@@ -90,7 +97,7 @@ def run_local(plan, *, progress=None, resume: bool = False, cancel=None) -> dict
     commits = CommitLog(log, records, plan.estimated_rows, progress)
 
     with ThreadPoolExecutor(max_workers=1, thread_name_prefix="annotator-checksum") as hasher, \
-            ThreadPoolExecutor(max_workers=1, thread_name_prefix="annotator-writer") as writer:
+            ThreadPoolExecutor(max_workers=WRITERS, thread_name_prefix="annotator-writer") as writer:
         sums = {str(s.path): hasher.submit(file_sha256, s.path) for s in plan.sources}
         in_flight: list[Future] = []
 
@@ -99,11 +106,11 @@ def run_local(plan, *, progress=None, resume: bool = False, cancel=None) -> dict
                 commits.commit(in_flight.pop(0).result())
 
         try:
-            for chunk in _prefetch(iter_pending_chunks(plan, done), depth=2):
+            for chunk in _prefetch(iter_pending_chunks(plan, done), depth=PREFETCH):
                 annotated, counts, flagged = pipeline.annotate(chunk.table)
                 in_flight.append(writer.submit(write_chunk, out, job.compression, metadata,
                                                chunk, annotated, counts, flagged))
-                drain(1)
+                drain(WRITERS)
                 if cancel is not None and cancel.is_set():
                     break
             drain(0)

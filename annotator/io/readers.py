@@ -19,7 +19,6 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
-import pandas as pd
 import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.csv as pacsv
@@ -350,6 +349,8 @@ class CsvReader:
                 continue
             except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
                 pass
+            import pandas as pd  # only when a CSV column needs checking
+
             strings = pd.Series(col.to_numpy(zero_copy_only=False), dtype=object)
             for i in np.flatnonzero(_unparseable(strings, f.type)):
                 bad_reason.setdefault(
@@ -420,6 +421,8 @@ def _infer_type(strings: pa.Array) -> pa.DataType:
     """The column's type from a sample of its text: the narrowest of int64, float64, bool that
     all but a few stray values (at most 0.1 %, at least 2) parse as; else string. The stray
     values are then set aside as rows with text where a number belongs."""
+    import pandas as pd
+
     series = pd.Series(strings.to_numpy(zero_copy_only=False), dtype=object)
     present = int(series.notna().sum())
     if present == 0:
@@ -437,11 +440,13 @@ def _infer_type(strings: pa.Array) -> pa.DataType:
     return pa.string()
 
 
-def _unparseable(strings: pd.Series, typ: pa.DataType) -> np.ndarray:
+def _unparseable(strings: "pd.Series", typ: pa.DataType) -> np.ndarray:
     """Rows whose non-null text cannot become ``typ``."""
     present = strings.notna().to_numpy()
     if pa.types.is_floating(typ) or pa.types.is_integer(typ):
         stripped = strings.where(strings.notna(), None)
+        import pandas as pd
+
         numbers = pd.to_numeric(stripped, errors="coerce")
         lowered = stripped.str.strip().str.lower()
         literal_nan = lowered.isin(["nan", "+nan", "-nan"]).to_numpy()

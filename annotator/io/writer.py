@@ -45,10 +45,17 @@ def parquet_write_options(schema: pa.Schema, compression: str) -> dict:
 
     Dictionary encoding only for non-float columns: on floating-point columns it almost never
     pays (distinct values everywhere) and was measured to take ~70 % of the write time.
+    Floating-point columns use Parquet's BYTE_STREAM_SPLIT encoding instead: it groups the
+    bytes of each value by position (sign/exponent bytes together), which zstd compresses
+    better and faster (measured on a 250 000-row annotated part: write 102 ms against 157 ms,
+    174 against 189 bytes per row, read 35 against 54 ms; benchmarks/bench_pipeline.py
+    --encodings prints the comparison).
     """
+    floats = [f.name for f in schema if pa.types.is_floating(f.type)]
     return {
         "compression": None if compression == "none" else compression,
         "use_dictionary": [f.name for f in schema if not pa.types.is_floating(f.type)],
+        "use_byte_stream_split": floats if floats else False,
         "write_statistics": True,
     }
 

@@ -21,6 +21,7 @@ import os
 import re
 import shutil
 import tempfile
+import threading
 from collections.abc import Iterable, Mapping
 from pathlib import Path
 
@@ -202,7 +203,16 @@ def _to_arrow(data: np.ndarray, null: np.ndarray | None, boolean: bool) -> pa.Ar
     return pa.Array.from_buffers(typ, n, [_bitmap(~null), values], null_count=int(null.sum()))
 
 
-def arrow_udf(fn: SqlFunction):
+# DuckDB calls a Python function from each of its threads, one vector (2 048 rows) at a time.
+# The interpreter lock lets only one run at once anyway, but without this lock two calls
+# interleave: every numpy operation inside releases and re-takes the interpreter lock, and the
+# two threads hand it back and forth (measured: 2 threads ran the SQL functions at about half
+# the speed of 1). Holding this lock for a whole call keeps the other DuckDB thread waiting
+# outside Python, free to scan and decode Parquet; benchmarks/bench_sql.py measures both.
+_ONE_PYTHON_CALL_AT_A_TIME = threading.Lock()
+
+
+def arrow_udf(fn: SqlFunction, *, one_call_at_a_time: bool = True):
     """Wrap a numpy function as a DuckDB Arrow UDF (one call per vector of rows).
 
     NULL out where the function returns NaN (or masks the value); a boolean result is also
@@ -211,6 +221,12 @@ def arrow_udf(fn: SqlFunction):
     boolean = fn.return_type.upper() == "BOOLEAN"
 
     def udf(*cols):
+        if not one_call_at_a_time:  # only for benchmarks/bench_sql.py's comparison
+            return evaluate(cols)
+        with _ONE_PYTHON_CALL_AT_A_TIME:
+            return evaluate(cols)
+
+    def evaluate(cols):
         args = [_as_float(c) for c in cols]
         n = len(args[0]) if args else 1
         with np.errstate(all="ignore"):
@@ -262,8 +278,8 @@ def output_format(to: str | Path | None, fmt: str | None) -> str:
         raise ConfigError(f"--format: {fmt!r} is not one of {', '.join(FORMATS)}")
     if to is None:
         if fmt == "parquet":
-            raise ConfigError("--format parquet needs --to FILE (Parquet is not written to a "
-                              "terminal)")
+            raise ConfigError("--format parquet needs --to FILE.parquet (Parquet is written "
+                              "only to a file, never to standard output)")
         return fmt or "table"
     if fmt == "table":
         raise ConfigError("--format table is for the terminal; with --to FILE choose csv, "
@@ -432,9 +448,13 @@ class QuerySession:
             raise query_error(exc) from None
 
     def copy_to(self, sql: str, fmt: str, *, overwrite: bool = False) -> int:
-        """Write the result with DuckDB's COPY (no rows pass through Python); return the count.
+        """Write the result to ``write_to``; return the count.
 
-        The file appears complete or not at all (written beside it, then renamed).
+        Parquet is written by DuckDB's COPY (no rows pass through Python). CSV and JSON Lines
+        go through the very writers of ``--format csv|json`` on stdout (Arrow's CSV writer,
+        one batch at a time; JSON with NaN and infinities as null), so one format gives one
+        output whether it goes to a pipe or to a file. The file appears complete or not at
+        all (written beside it, then renamed).
         """
         if self.write_to is None or self._tmp_target is None:
             raise ConfigError("copy_to needs the session opened with write_to=FILE")
@@ -449,13 +469,36 @@ class QuerySession:
         tmp = self._tmp_target
         tmp.unlink(missing_ok=True)
         try:
-            rows = self.con.execute(f"COPY (\n{text}\n) TO {_literal(str(tmp))} "
-                                    f"({COPY_OPTIONS[fmt]})").fetchone()
-        except duckdb.Error as exc:
+            if fmt == "parquet":
+                rows = self.con.execute(f"COPY (\n{text}\n) TO {_literal(str(tmp))} "
+                                        f"({COPY_OPTIONS[fmt]})").fetchone()
+                rows = int(rows[0]) if rows else 0
+            else:
+                rows = self._write_streamed(text, fmt, tmp)
+        except (duckdb.Error, pa.ArrowException) as exc:
             tmp.unlink(missing_ok=True)
             raise query_error(exc) from None
+        except BaseException:
+            tmp.unlink(missing_ok=True)
+            raise
         os.replace(tmp, self.write_to)
-        return int(rows[0]) if rows else 0
+        return rows
+
+    def _write_streamed(self, text: str, fmt: str, tmp: Path) -> int:
+        from .output import write_csv, write_json_lines
+
+        reader = self.reader(text)
+        try:
+            if fmt == "csv":
+                with open(tmp, "wb") as fh:
+                    return write_csv(reader, fh)
+            with open(tmp, "w", encoding="utf-8", newline="\n") as fh:
+                return write_json_lines(reader, fh)
+        finally:
+            try:
+                reader.close()
+            except Exception:  # already exhausted
+                pass
 
     # ------------------------------------------------------------------ lifetime
     def close(self) -> None:

@@ -98,6 +98,7 @@ def _pair(setup, key: str, value, *, what: str) -> tuple:
 class KCorrection(Annotator):
     name = "kcorrection"
     version = "1.0"
+    documentation = "docs/kcorrection.md"
     summary = ("K-corrections and K-corrected absolute magnitudes per band, from the job's "
                "[bands.<band>] tables (power law, template SEDs, template mixtures, polynomials).")
     sections = ("bands",)
@@ -151,7 +152,7 @@ class KCorrection(Annotator):
     def configure(cls, setup):
         setup.reject_unknown_options(OPTIONS)
         if "bands" not in setup.sections:
-            return None
+            return setup.does_not_apply("no [bands] tables in the job")
         tolerance = _number(setup, "tolerance_mag",
                             setup.options.get("tolerance_mag", DEFAULT_TOLERANCE_MAG))
         if not 1e-7 <= tolerance <= 0.01:

@@ -176,7 +176,7 @@ def test_disabling_an_annotator_drops_its_columns(catalogue_parquet, tmp_path):
     plan = build_plan(_job(catalogue_parquet, tmp_path, annotators={"horizons": False}))
     names = [c.name for c in plan.added_columns]
     assert "reachable" not in names and "comoving_distance_mpc" in names
-    assert ("horizons", "disabled") in plan.skipped
+    assert ("horizons", "disabled ([annotators] horizons = false)") in plan.skipped
 
 
 def test_undeclared_flag_and_wrong_length_are_plugin_errors(catalogue_parquet, tmp_path):
