@@ -388,16 +388,19 @@ class Ledger:
 
     def set_waiting(self, identifier: str, reason: str | None) -> bool:
         """Say why a QUEUED job is not started yet (None: it no longer waits); an event is
-        written only when the reason changes. True if it changed."""
+        written when it starts waiting. True if it changed."""
         seq = job_seq(identifier)
         with self._connect() as con:
             con.execute("BEGIN IMMEDIATE")
-            cur = con.execute("UPDATE jobs SET waiting = ?, updated_at = ? WHERE seq = ? AND "
-                              "phase = ? AND waiting IS NOT ?",
-                              (reason, time.time(), seq, QUEUED, reason))
-            if cur.rowcount == 1 and reason:
+            row = con.execute("SELECT waiting FROM jobs WHERE seq = ? AND phase = ?",
+                              (seq, QUEUED)).fetchone()
+            if row is None or row[0] == reason:
+                return False
+            con.execute("UPDATE jobs SET waiting = ?, updated_at = ? WHERE seq = ?",
+                        (reason, time.time(), seq))
+            if reason and row[0] is None:  # one event when it starts waiting, not each check
                 self._event(con, seq, QUEUED, reason, time.time())
-        return cur.rowcount == 1
+        return True
 
     def set_report(self, identifier: str, report_path: str | None, error: str | None) -> None:
         """The outcome of building a job's report (it is no longer pending)."""

@@ -44,6 +44,8 @@ LOG_FILE = "worker.log"
 REPORT_FILE = "report.html"
 #: how often the scheduler applies retention (it also does at start)
 SWEEP_INTERVAL_S = 60.0
+#: how often the free space is looked at again while the next job waits for it
+DISK_RECHECK_S = 5.0
 PROGRESS_INTERVAL_S = 0.5
 #: imported once by the fork server (see :mod:`.preload`), inherited by every worker
 PRELOAD = ["annotator.service.preload"]
@@ -297,6 +299,7 @@ class WorkerPool:
         self.reporting: dict[str, multiprocessing.process.BaseProcess] = {}
         self._last_sweep = 0.0
         self._waiting_since: dict[str, float] = {}
+        self._disk_checked = 0.0
         self.data_roots = [str(r) for r in data_roots]
         self.workers = workers
         self.max_crashes = max_crashes
@@ -460,10 +463,13 @@ class WorkerPool:
                 self._waiting_since = {}
                 return True
             # only the head of the queue waits (jobs start in submission order)
-            since = self._waiting_since.get(record.id, time.monotonic())
+            now = time.monotonic()
+            since = self._waiting_since.get(record.id, now)
             self._waiting_since = {record.id: since}
-            verdict, reason = self.disk_guard.verdict(record.estimated_bytes,
-                                                      time.monotonic() - since)
+            if record.waiting and now - self._disk_checked < DISK_RECHECK_S:
+                return False  # it waits; the free space is looked at again every few seconds
+            self._disk_checked = now
+            verdict, reason = self.disk_guard.verdict(record.estimated_bytes, now - since)
             if verdict == "start":
                 self._waiting_since.pop(record.id, None)
                 if record.waiting:

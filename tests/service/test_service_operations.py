@@ -262,3 +262,42 @@ def test_metrics_are_valid_openmetrics_and_count_what_happened(kept, data):
 def test_metrics_need_the_token_like_the_rest_of_the_api(kept):
     r = httpx.get(kept.url + "/metrics", timeout=30)
     assert r.status_code == 401 and r.headers["www-authenticate"].startswith("Bearer")
+
+
+class _ScriptedGuard:
+    """A disk guard whose verdicts the test decides (the scheduler's side is under test)."""
+
+    def __init__(self):
+        self.answer = ("wait", "waiting for disk space: scripted")
+
+    def verdict(self, estimated, waited_s):
+        return self.answer
+
+
+def test_the_scheduler_holds_a_job_that_does_not_fit_then_starts_or_fails_it(tmp_path,
+                                                                             monkeypatch):
+    import annotator.service.workers as workers
+    from annotator.service.workers import WorkerPool
+
+    monkeypatch.setattr(workers, "DISK_RECHECK_S", 0.0)
+    ledger = Ledger(tmp_path)
+    ids = []
+    for i in range(2):
+        rec = ledger.create(name=f"j{i}", job={}, base_dir="/", notes=[],
+                            jobs_dir=tmp_path / "jobs", estimated_bytes=10 ** 9)
+        ledger.queue(rec.id)
+        ids.append(rec.id)
+    guard = _ScriptedGuard()
+    pool = WorkerPool(ledger, [tmp_path], disk_guard=guard)
+    assert pool._fits_on_disk() is False and pool._fits_on_disk() is False
+    held = ledger.get(ids[0])
+    assert held.phase == "QUEUED" and held.waiting == "waiting for disk space: scripted"
+    assert [e["message"] for e in ledger.history(ids[0])].count(held.waiting) == 1  # once
+    assert ledger.get(ids[1]).waiting is None  # only the head of the queue waits
+    guard.answer = ("start", None)
+    assert pool._fits_on_disk() is True and ledger.get(ids[0]).waiting is None
+    guard.answer = ("fail", "its estimated output does not fit")
+    assert pool._fits_on_disk() is True  # both failed; the queue is then empty
+    for ident in ids:
+        failed = ledger.get(ident)
+        assert failed.phase == "ERROR" and "not started: its estimated output" in failed.error

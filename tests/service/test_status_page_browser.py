@@ -51,7 +51,7 @@ def survey(tmp_path_factory):
     root = tmp_path_factory.mktemp("quillfield")
     pq.write_table(make_catalogue(3_000, seed=41), root / "qds-night-0412-violet.parquet",
                    row_group_size=1_000)
-    pq.write_table(make_catalogue(600_000, seed=42), root / "qds-deep-field-cyan.parquet")
+    pq.write_table(make_catalogue(900_000, seed=42), root / "qds-deep-field-cyan.parquet")
     pq.write_table(make_catalogue(3_000, seed=43), root / "qds-night-0413-amber.parquet")
     corrupt_copy(root / "qds-night-0412-violet.parquet", root / "qds-night-0411-crimson.parquet")
     return root
@@ -62,6 +62,12 @@ def service(survey, tmp_path_factory):
     s = Service(tmp_path_factory.mktemp("status") / "root", [survey], token=TOKEN).start()
     yield s
     s.kill()
+
+
+def submit(service: Service, body: str, name: str) -> str:
+    r = service.submit(body, name=name)
+    assert r.status_code == 201, r.text
+    return r.json()["id"]
 
 
 def _row_phase(driver, ident: str) -> str | None:
@@ -118,20 +124,20 @@ def test_an_operators_morning_in_a_real_browser(service, survey):
         assert cookie["httpOnly"] is True and cookie["sameSite"] == "Strict"
 
         # -- a submitted job appears in the table by itself (the page refreshes) and completes
-        first = service.submit(job_toml(survey / "qds-night-0412-violet.parquet"),
-                               name="night-0412 violet").json()["id"]
+        first = submit(service, job_toml(survey / "qds-night-0412-violet.parquet"),
+                       "night-0412 violet")
         wait_for(lambda: _row_phase(driver, first) == "COMPLETED", f"{first} COMPLETED",
                  timeout_s=90)
         assert "night-0412 violet" in visible_text(driver)
 
-        broken = service.submit(job_toml(survey / "qds-night-0411-crimson.parquet"),
-                                name="night-0411 crimson").json()["id"]
-        deep = service.submit(job_toml(survey / "qds-deep-field-cyan.parquet", 500),
-                              name="deep field cyan").json()["id"]
-        later = service.submit(job_toml(survey / "qds-night-0413-amber.parquet"),
-                               name="night-0413 amber").json()["id"]
-        spare = service.submit(job_toml(survey / "qds-night-0413-amber.parquet"),
-                               name="night-0413 amber, again").json()["id"]
+        broken = submit(service, job_toml(survey / "qds-night-0411-crimson.parquet"),
+                        "night-0411 crimson")
+        deep = submit(service, job_toml(survey / "qds-deep-field-cyan.parquet"),
+                      "deep field cyan")
+        later = submit(service, job_toml(survey / "qds-night-0413-amber.parquet"),
+                       "night-0413 amber")
+        spare = submit(service, job_toml(survey / "qds-night-0413-amber.parquet"),
+                       "night-0413 amber, again")
         wait_for(lambda: _row_phase(driver, broken) == "ERROR", f"{broken} ERROR", 90)
 
         # -- its progress advances, seen in the table
