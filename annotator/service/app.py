@@ -242,8 +242,10 @@ async def read_body(request: Request, limit: int, timeout_s: float) -> bytes:
     try:
         await asyncio.wait_for(collect(), timeout_s)
     except asyncio.TimeoutError:
+        # and close the connection: the rest of the body may still trickle in
         raise HTTPException(408, f"request body not received within {timeout_s:g} s "
-                                 f"({len(body)} bytes arrived)") from None
+                                 f"({len(body)} bytes arrived)",
+                            headers={"connection": "close"}) from None
     return bytes(body)
 
 
@@ -432,7 +434,8 @@ def create_app(config: ServiceConfig) -> FastAPI:
 
     @app.exception_handler(StarletteHTTPException)
     async def http_error(request, exc: StarletteHTTPException):
-        return JSONResponse({"error": str(exc.detail)}, status_code=exc.status_code)
+        return JSONResponse({"error": str(exc.detail)}, status_code=exc.status_code,
+                            headers=getattr(exc, "headers", None))
 
     @app.exception_handler(404)
     async def not_found(request, exc):

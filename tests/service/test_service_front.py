@@ -245,12 +245,14 @@ def test_idle_and_slow_clients_are_cut_off_by_the_head_and_body_timeouts(quick):
 
 IDLE = 1000
 REQUESTS = 50
+CONCURRENT = 10  # clients at once, each making REQUESTS / CONCURRENT requests in turn
 
 
 def test_a_thousand_idle_connections_do_not_deny_service(data, tmp_path):
     """Issue 15: 256 idle connections used to give every request a 503. Here 1 000 idle
     connections stay open (the head timeout is long) while 50 authenticated requests are
-    made; each must succeed, within a generous 10 s (no timing race: typical is ~10 ms)."""
+    made by 10 clients at once; each must succeed, within a generous 10 s (not a timing
+    test: typically well under a second, even on a loaded machine)."""
     soft, hard = resource.getrlimit(resource.RLIMIT_NOFILE)
     need = IDLE + 200
     if soft < need:
@@ -277,15 +279,20 @@ def test_a_thousand_idle_connections_do_not_deny_service(data, tmp_path):
                 times.append(time.monotonic() - t)
                 statuses.append(r.status_code)
 
-        threads = [threading.Thread(target=one) for _ in range(REQUESTS)]
+        def several():
+            for _ in range(REQUESTS // CONCURRENT):
+                one()
+
+        threads = [threading.Thread(target=several) for _ in range(CONCURRENT)]
         for t in threads:
             t.start()
         for t in threads:
-            t.join(30)
+            t.join(120)
         assert statuses == [200] * REQUESTS, statuses
         assert max(times) < 10.0, times
         times.sort()
-        print(f"\n{REQUESTS} requests beside {IDLE} idle connections: median "
+        print(f"\n{REQUESTS} requests ({CONCURRENT} at a time) beside {IDLE} idle connections: "
+              f"median "
               f"{times[len(times) // 2] * 1000:.0f} ms, slowest {times[-1] * 1000:.0f} ms")
         # and the idle ones were all still open
         assert _open_connections(service) >= IDLE
