@@ -324,3 +324,33 @@ def _open_connections(service: Service) -> int:
             if fields[3] == "01" and fields[9] in inodes:  # 01 = ESTABLISHED
                 count += 1
     return count
+
+
+_raw_targets = st.binary(min_size=1, max_size=120).map(
+    lambda b: b"/" + b.replace(b" ", b"").replace(b"\r", b"").replace(b"\n", b""))
+_raw_headers = st.lists(st.tuples(
+    st.binary(min_size=1, max_size=20).filter(lambda b: b":" not in b and b"\r" not in b
+                                              and b"\n" not in b
+                                              and b.lower() != b"content-length"
+                                              and b.lower() != b"transfer-encoding"),
+    st.binary(max_size=40).filter(lambda b: b"\r" not in b and b"\n" not in b)), max_size=4)
+
+
+@settings(max_examples=40, deadline=None,
+          suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
+@given(method=st.sampled_from([b"GET", b"POST", b"DELETE", b"G\x00T", b"PUT"]),
+       target=_raw_targets, headers=_raw_headers)
+def test_fuzzed_raw_requests_over_a_socket_never_get_a_5xx(quick, method, target, headers):
+    """Whatever bytes arrive as a complete head, the answer is never a 5xx (or none at all,
+    for a connection the server just closes) and the service keeps answering."""
+    head = method + b" " + target + b" HTTP/1.1\r\nHost: x\r\n"
+    head += f"Authorization: Bearer {TOKEN}\r\nConnection: close\r\n".encode()
+    head += b"".join(k + b": " + v + b"\r\n" for k, v in headers) + b"\r\n"
+    raw = _raw(quick.url, head)
+    if raw:
+        status = int(raw.split(b" ", 2)[1])
+        assert status < 500, (head[:200], raw[:300])
+        if status >= 400:
+            assert b"application/json" in raw.partition(b"\r\n\r\n")[0].lower(), raw[:300]
+    with quick.client() as c:
+        assert c.get("/health").status_code == 200
