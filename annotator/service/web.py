@@ -66,6 +66,8 @@ def format_duration(seconds) -> str:
     if seconds is None:
         return "–"
     s = max(float(seconds), 0.0)
+    if s < 10:
+        return f"{s:.1f} s"
     if s < 60:
         return f"{s:.0f} s"
     if s < 3600:
