@@ -16,6 +16,7 @@ SCRIPTS = [
     ("bench_cosmology.py", []),
     ("bench_pipeline.py", []),
     ("bench_kcorrection.py", []),
+    ("bench_luminosity_function.py", []),
     ("bench_uncertainty.py", []),
     ("bench_sql.py", []),
     ("bench_dask.py", []),

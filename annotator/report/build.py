@@ -370,7 +370,7 @@ def build_report(folder: str | Path, to: str | Path, *, sample_rows: int = DEFAU
     if not to.parent.is_dir():
         raise OutputError(f"--to {to}: folder {to.parent} does not exist")
 
-    from . import figures
+    from . import figures, luminosity
 
     t0 = time.perf_counter()
     timings: dict[str, float] = {}
@@ -510,6 +510,9 @@ def build_report(folder: str | Path, to: str | Path, *, sample_rows: int = DEFAU
                 "output was changed after the run, or written by a different engine version."))
     hubble_parts.append("</section>")
     sections.append("".join(hubble_parts))
+
+    # -- luminosity function (report/luminosity.py: from the V_max columns, when present)
+    sections.append(luminosity.section(out, figs, skipped))
 
     # -- sky map
     if out.ra_column and out.dec_column:

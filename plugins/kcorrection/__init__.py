@@ -30,6 +30,8 @@ import pyarrow as pa
 from annotator import Annotator, ColumnSpec, hookimpl
 
 from .._redshift import REDSHIFT_HINTS
+from . import extinction as _ext
+from . import vmax as _vmax
 from .methods import (
     LN10, Method, Polynomial, PowerLaw, PowerLawFromColour, Template,
     TemplateMix,
@@ -39,10 +41,12 @@ from .tables import (
     ucd_band_word,
 )
 
-__all__ = ["KCorrection", "register_annotators"]
+from .vmax import register_selections  # noqa: E402,F401  (the luminosity_function selection)
+
+__all__ = ["KCorrection", "register_annotators", "register_selections"]
 
 BAND_NAME = re.compile(r"^[a-z][a-z0-9_]*$")
-BAND_KEYS = ("magnitude", "error", "filter", "rest_filter", "kcorrection")
+BAND_KEYS = ("magnitude", "error", "filter", "rest_filter", "kcorrection") + _vmax.BAND_KEYS
 METHOD_KEYS = {
     "power_law": ("method", "alpha", "z_max"),
     "power_law_colour": ("method", "colour", "alpha_range", "z_max"),
@@ -50,7 +54,8 @@ METHOD_KEYS = {
     "template_mix": ("method", "seds", "colour", "z_max", "clip_tolerance_mag"),
     "polynomial": ("method", "coefficients", "colour", "z_max", "colour_range"),
 }
-OPTIONS = ("tolerance_mag", "use_redshift_error")
+OPTIONS = ("tolerance_mag", "use_redshift_error", "extinction_law", "extinction_r_v") + \
+    _vmax.OPTIONS
 OBSERVED_REDSHIFT = "observed:redshift"
 REDSHIFT_ERROR_HINTS = ("redshift_error", "z_err", "zerr", "z_error", "redshift_err")
 DEFAULT_ALPHA_RANGE = (-10.0, 10.0)
@@ -103,10 +108,14 @@ class KCorrection(Annotator):
                "[bands.<band>] tables (power law, template SEDs, template mixtures, polynomials).")
     sections = ("bands",)
     position = 50
-    input_hints = {"redshift": REDSHIFT_HINTS, "redshift_error": REDSHIFT_ERROR_HINTS}
+    input_hints = {"redshift": REDSHIFT_HINTS, "redshift_error": REDSHIFT_ERROR_HINTS,
+                   _ext.EBV_INPUT: _ext.EBV_HINTS}
 
-    def __init__(self, bands: list[BandSpec], cosmology, use_redshift_error: bool):
+    def __init__(self, bands: list[BandSpec], cosmology, use_redshift_error: bool,
+                 extinction: "_ext.Extinction | None" = None, vmax: "_vmax.Vmax | None" = None):
         self.bands = bands
+        self.extinction = extinction
+        self.vmax = vmax
         self.cosmology = cosmology
         self.use_redshift_error = use_redshift_error
         used = [b for b in bands if b.method is not None or self._is_colour_band(b.name)]
@@ -137,6 +146,16 @@ class KCorrection(Annotator):
                 f"absolute magnitude.")
         flags[NO_DISTANCE] = ("No distance modulus at this redshift (missing, negative or zero "
                               "redshift): null absolute magnitudes in every band.")
+        # ---- extinction and V_max (extinction.py, vmax.py) ------------------------------
+        if extinction is not None:
+            requires.append(_ext.EBV_INPUT)
+            provides.extend(extinction.columns([b.name for b in bands if b.method is not None]))
+            flags.update(extinction.flags())
+        if vmax is not None:
+            provides.extend(vmax.columns())
+            flags.update(vmax.flags())
+        self.requires = tuple(requires)
+        # ---- end: extinction and V_max ---------------------------------------------------
         self.provides = tuple(provides)
         self.flags = flags
 
@@ -188,7 +207,12 @@ class KCorrection(Annotator):
             if b.method is None and b.name not in used_in_colours:
                 raise setup.error(b.key, "has no kcorrection and no other band's colour uses "
                                   "it: add kcorrection = { method = ... } or remove the band")
-        return cls(bands, setup.cosmology, use_z_err)
+        # ---- extinction and V_max (extinction.py, vmax.py) ------------------------------
+        used = [b for b in bands if b.method is not None or b.name in used_in_colours]
+        extinction = _ext.configure_extinction(setup, used, setup.options)
+        vmax = _vmax.configure_vmax(setup, bands, raw, setup.options, setup.cosmology)
+        # ---- end: extinction and V_max ---------------------------------------------------
+        return cls(bands, setup.cosmology, use_z_err, extinction, vmax)
 
     # -- per batch -----------------------------------------------------------------------
     def annotate(self, batch):
@@ -202,6 +226,11 @@ class KCorrection(Annotator):
             batch.flag(NO_DISTANCE, no_distance)
         mags = {b.name: batch.values(b.magnitude_input) for b in self.bands
                 if b.magnitude_input in self.requires}
+        # ---- extinction and V_max (extinction.py, vmax.py) ------------------------------
+        observed_mags, extinction, no_ebv = mags, {}, None
+        if self.extinction is not None:
+            mags, extinction, no_ebv = self.extinction.apply(batch, mags)
+        # ---- end: extinction and V_max ---------------------------------------------------
         errs = {b.name: batch.values(b.error_input) for b in self.bands
                 if b.error_input and b.error_input in self.requires}
         z_err = None
@@ -230,6 +259,15 @@ class KCorrection(Annotator):
                 batch.flag(f"magnitude_{b.name}_missing", missing)
             absolute = m - mu - k
             absolute[~np.isfinite(absolute)] = np.nan
+            # ---- extinction and V_max (extinction.py, vmax.py) --------------------------
+            if no_ebv is not None:
+                absolute[no_ebv] = np.nan
+                out[f"extinction_{b.name}_mag"] = extinction[b.name]
+            if self.vmax is not None and b.name in self.vmax.limits:
+                out.update(self.vmax.compute(
+                    batch, b.name, method, method.shape(z, colour), z_ok,
+                    observed_mags[b.name], k, mu, absolute))
+            # ---- end: extinction and V_max -----------------------------------------------
             out[f"kcorrection_{b.name}_mag"] = k
             out[f"absolute_magnitude_{b.name}_mag"] = absolute
             if b.error_input:

@@ -91,6 +91,23 @@ class Method:
         k_hi, _ = self.evaluate(z, colour + hc)
         return dkdz, (k_hi - k_lo) / (2 * hc)
 
+    # -- per-object K-curve: K of each object's own SED at other redshifts ---------------
+    def shape(self, z: np.ndarray, colour: np.ndarray | None) -> np.ndarray | None:
+        """Per-object shape parameter fixing each object's K-curve, from its observed redshift
+        and colour: the mixing weight (template_mix), the slope alpha (power_law_colour), the
+        observed colour held fixed (polynomial), or None when K depends on z alone (template,
+        power_law). NaN where the object has no K-curve (missing colour, redshift outside)."""
+        return None
+
+    def k_at(self, z_new: np.ndarray, shape: np.ndarray | None) -> np.ndarray:
+        """K at new redshifts for the objects whose :meth:`shape` is given.
+
+        ``z_new`` has shape (n,) (one new redshift per object) or (n, m) (m per object);
+        ``shape`` has shape (n,) or is None. NaN outside 0 <= z_new <= z_max and where the
+        shape is NaN. ``k_at(z, shape(z, c))`` equals ``evaluate(z, c)[0]``.
+        """
+        raise NotImplementedError
+
     # -- shared ----------------------------------------------------------------------
     def _outside(self, z: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """(usable, flag): usable where 0 <= z <= z_max; flag where z is finite but outside."""
@@ -123,6 +140,11 @@ class PowerLaw(Method):
     def derivatives(self, z, colour=None):
         with np.errstate(invalid="ignore"):
             return (-2.5 * (1.0 + self.alpha) / LN10) / (1.0 + z), np.zeros_like(z)
+
+    def k_at(self, z_new, shape=None):
+        z_new = np.asarray(z_new, dtype=np.float64)
+        usable, _ = self._outside(z_new)
+        return (-2.5 * (1.0 + self.alpha) / LN10) * np.log1p(np.where(usable, z_new, np.nan))
 
 
 def power_law_colours(filt_p: Filter, filt_q: Filter, alphas: np.ndarray) -> np.ndarray:
@@ -236,6 +258,17 @@ class PowerLawFromColour(Method):
             dkdc = -2.5 / LN10 * np.log1p(z) * dalpha_dc
         return dkdz, dkdc
 
+    def shape(self, z, colour):
+        """The slope alpha of each object's power law (NaN outside the tabulated colours)."""
+        alpha, _ = self.alpha(colour)
+        return alpha
+
+    def k_at(self, z_new, shape):
+        z_new = np.asarray(z_new, dtype=np.float64)
+        alpha = _per_row(shape, z_new)
+        usable, _ = self._outside(z_new)
+        return -2.5 / LN10 * (1.0 + alpha) * np.log1p(np.where(usable, z_new, np.nan))
+
 
 # ------------------------------------------------------------------------- templates
 def _shape_maggies(sed: Curve, filt: Filter, z: np.ndarray) -> np.ndarray:
@@ -293,6 +326,13 @@ class Template(Method):
     def derivatives(self, z, colour=None):
         idx, frac, _ = self.table.grid.locate(z)
         return self.table.derivative(0, idx, frac), np.zeros_like(z)
+
+    def k_at(self, z_new, shape=None):
+        z_new = np.array(z_new, dtype=np.float64)
+        idx, frac, inside = self.table.grid.locate(z_new)
+        k = self.table.at(0, idx, frac)
+        k[~inside] = np.nan
+        return k
 
 
 @dataclass(kw_only=True)
@@ -447,6 +487,28 @@ class TemplateMix(Method):
             dkdc = scale * (b_r - a_r) * dw_dc
         return dkdz, dkdc
 
+    def shape(self, z, colour):
+        """Each object's mixing weight w of template B (as used by :meth:`evaluate`, so
+        clipped to [0, 1]); NaN where the colour is missing or z is outside the table."""
+        w, _, inside, _, _ = self.weights(z, colour)
+        w = np.array(w, dtype=np.float64)
+        w[~inside | ~np.isfinite(colour)] = np.nan
+        return w
+
+    def k_at(self, z_new, shape):
+        """K of the fixed mixture (1 - w) A + w B at new redshifts: both templates have unit
+        rest-frame flux, so K = -2.5 log10((1 - w) A_R(z') + w B_R(z'))."""
+        z_new = np.array(z_new, dtype=np.float64)
+        w = _per_row(shape, z_new)
+        idx, frac, inside = self.table.grid.locate(z_new)
+        r = self.columns[0]
+        a_r = self.table.at(2 * r, idx, frac)
+        b_r = self.table.at(2 * r + 1, idx, frac)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            k = -2.5 * np.log10(a_r + w * (b_r - a_r))
+        k[~inside] = np.nan
+        return k
+
 
 # ------------------------------------------------------------------------ polynomial
 @dataclass(kw_only=True)
@@ -501,6 +563,32 @@ class Polynomial(Method):
         dc = np.arange(a.shape[1])[None, :] * a
         return (_polyval2d(z, colour, dz[1:]) if a.shape[0] > 1 else np.zeros_like(z),
                 _polyval2d(z, colour, dc[:, 1:]) if a.shape[1] > 1 else np.zeros_like(z))
+
+    def shape(self, z, colour):
+        """The observed colour, HELD FIXED: a polynomial in (z, colour) says nothing about
+        how an object's colour would change with redshift, so K(z') is the polynomial at z'
+        and the colour observed at z (an approximation; NaN where the colour is missing or
+        outside colour_range)."""
+        c = np.array(colour, dtype=np.float64)
+        if self.colour_range is not None:
+            lo, hi = self.colour_range
+            with np.errstate(invalid="ignore"):
+                c[(c < lo) | (c > hi)] = np.nan
+        return c
+
+    def k_at(self, z_new, shape):
+        z_new = np.array(z_new, dtype=np.float64)
+        c = np.broadcast_to(_per_row(shape, z_new), z_new.shape).copy()
+        usable, _ = self._outside(z_new)
+        k = _polyval2d(z_new, c, self.coefficients)
+        k[~usable | ~np.isfinite(c)] = np.nan
+        return k
+
+
+def _per_row(shape: np.ndarray, z_new: np.ndarray) -> np.ndarray:
+    """A per-object parameter shaped to broadcast against z_new of shape (n,) or (n, m)."""
+    shape = np.asarray(shape, dtype=np.float64)
+    return shape[:, None] if z_new.ndim == 2 and shape.ndim == 1 else shape
 
 
 def _polyval2d(z: np.ndarray, c: np.ndarray, a: np.ndarray) -> np.ndarray:
