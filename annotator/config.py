@@ -10,6 +10,9 @@ A job file::
     format = "auto"                          # auto | parquet | csv
     delimiter = ","                          # CSV only
     column_types = { objid = "int64" }       # CSV only: override the inferred type
+    encoding = "utf-8"                       # CSV only: any ASCII-compatible encoding
+    missing_tokens = ["", "NA", "N/A", "null", "NaN", "nan", "-"]   # CSV only: "no value"
+    sentinels = { mag_r = [-99, 99] }        # any format: values that mean "not measured"
 
     [output]
     dir = "annotated"
@@ -42,9 +45,11 @@ else:  # pragma: no cover
     import tomli as tomllib
 
 from .errors import ConfigError
+from .io.missing import DEFAULT_MISSING_TOKENS, parse_missing_tokens, parse_sentinels
 
 CORE_SECTIONS = ("input", "output", "cosmology", "columns", "annotators")
-INPUT_KEYS = ("paths", "format", "delimiter", "column_types")
+INPUT_KEYS = ("paths", "format", "delimiter", "column_types", "encoding", "missing_tokens",
+              "sentinels")
 OUTPUT_KEYS = ("dir", "chunk_rows", "compression", "overwrite")
 FORMATS = ("auto", "parquet", "csv")
 COMPRESSIONS = ("zstd", "snappy", "gzip", "lz4", "none")
@@ -62,6 +67,9 @@ class Job:
     :ivar input_format: ``auto`` (by extension), ``parquet`` or ``csv``.
     :ivar delimiter: CSV field delimiter.
     :ivar column_types: CSV column type overrides, ``{column: arrow type name}``.
+    :ivar encoding: CSV text encoding (ASCII-compatible; default UTF-8).
+    :ivar missing_tokens: CSV cell texts that mean "no value".
+    :ivar sentinels: ``{column: (values…)}`` read as null and flagged, in every format.
     :ivar chunk_rows: rows per batch and per part file.
     :ivar compression: Parquet codec of the output.
     :ivar overwrite: replace a non-empty output folder.
@@ -81,6 +89,9 @@ class Job:
     input_format: str = "auto"
     delimiter: str = ","
     column_types: dict[str, str] = field(default_factory=dict)
+    encoding: str = "utf-8"
+    missing_tokens: tuple[str, ...] = DEFAULT_MISSING_TOKENS
+    sentinels: dict[str, tuple] = field(default_factory=dict)
     chunk_rows: int = DEFAULT_CHUNK_ROWS
     compression: str = "zstd"
     overwrite: bool = False
@@ -101,6 +112,9 @@ class Job:
             "input_format": self.input_format,
             "delimiter": self.delimiter,
             "column_types": dict(self.column_types),
+            "encoding": self.encoding,
+            "missing_tokens": list(self.missing_tokens),
+            "sentinels": {k: list(v) for k, v in self.sentinels.items()},
             "chunk_rows": self.chunk_rows,
             "compression": self.compression,
             "cosmology": self.cosmology,
@@ -110,6 +124,11 @@ class Job:
             "base_dir": str(self.base_dir),
             "source": str(self.source) if self.source else None,
         }
+
+    def reader_options(self) -> dict:
+        """Keyword arguments for ``annotator.io.readers.open_reader``."""
+        return {"delimiter": self.delimiter, "column_types": dict(self.column_types),
+                "encoding": self.encoding, "missing_tokens": self.missing_tokens}
 
     def fingerprint(self) -> dict:
         """What must not change between a run and its resumption."""
@@ -195,6 +214,13 @@ def job_from_mapping(
             raise ConfigError(
                 f"[input].column_types.{col}: {typ!r} is not one of {', '.join(ARROW_TYPE_NAMES)}"
             )
+    encoding = _expect(inp.get("encoding", "utf-8"), str, "[input].encoding", "a string")
+    from .io.csv import check_encoding
+
+    encoding = check_encoding(encoding)
+    missing_tokens = parse_missing_tokens(inp["missing_tokens"]) if "missing_tokens" in inp \
+        else DEFAULT_MISSING_TOKENS
+    sentinels = parse_sentinels(inp.get("sentinels", {}))
 
     if output_dir is not None:
         out_dir = Path(output_dir).expanduser().resolve()
@@ -250,6 +276,9 @@ def job_from_mapping(
         input_format=fmt,
         delimiter=delimiter,
         column_types=dict(column_types),
+        encoding=encoding,
+        missing_tokens=missing_tokens,
+        sentinels=sentinels,
         chunk_rows=rows,
         compression=compression,
         overwrite=ow,

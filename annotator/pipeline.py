@@ -15,6 +15,7 @@ import pyarrow.compute as pc
 from .api import Batch
 from .columns import FLAGS_COLUMN
 from .errors import PluginError
+from .io.missing import apply_sentinels
 
 FLAG_SEPARATOR = ";"
 
@@ -31,8 +32,11 @@ class Pipeline:
     """Annotators in order, ready to run on batches."""
 
     def __init__(self, steps: list[PipelineStep], output_schema: pa.Schema,
-                 flag_reasons: list[str], schema_metadata: dict | None = None):
+                 flag_reasons: list[str], schema_metadata: dict | None = None,
+                 sentinels: dict | None = None):
         self.steps = steps
+        #: ``{column: values}`` read as null and flagged before any annotator runs
+        self.sentinels = dict(sentinels or {})
         self.output_schema = output_schema
         self.flag_reasons = list(flag_reasons)
         self.flag_bits = {r: i for i, r in enumerate(self.flag_reasons)}
@@ -44,7 +48,7 @@ class Pipeline:
         steps = [PipelineStep(s.name, s.annotator, dict(s.resolve), list(s.annotator.provides))
                  for s in plan.steps]
         return cls(steps, plan.output_schema, [r for r, _, _ in plan.flag_reasons],
-                   schema_metadata)
+                   schema_metadata, sentinels=getattr(plan.job, "sentinels", None))
 
     def __getstate__(self):
         state = self.__dict__.copy()
@@ -61,6 +65,9 @@ class Pipeline:
     def annotate(self, table: pa.Table) -> tuple[pa.Table, dict[str, int], int]:
         """Annotate one batch.
 
+        Sentinel values of the input (``[input].sentinels``) become nulls first, each raising
+        its ``sentinel_<column>`` flag, whatever format the batch was read from.
+
         :return: the output table, the count of rows raising each flag, the count of rows with
             at least one flag.
         """
@@ -69,6 +76,9 @@ class Pipeline:
         n_words = max(1, (len(self.flag_reasons) + 63) // 64)
         bits = np.zeros((n_words, n), dtype=np.uint64)
         computed: dict[str, list] = {}
+        input_flags: dict = {}
+        if self.sentinels:
+            table, input_flags = apply_sentinels(table, self.sentinels)
 
         def flagger(owner: str, reason: str, mask) -> None:
             bit = self.flag_bits.get(reason)
@@ -83,6 +93,8 @@ class Pipeline:
                                   f"{mask.shape}, expected ({n},)")
             bits[bit // 64][mask] |= np.uint64(1 << (bit % 64))
 
+        for reason, mask in input_flags.items():
+            flagger("input", reason, mask)
         shared: dict = {}
         for step in self.steps:
             batch = Batch(table, step.resolve, computed, flagger, step.name, shared)

@@ -15,6 +15,8 @@ from .api import Annotator, Setup
 from .columns import FLAGS_COLUMN, ColumnSpec
 from .config import Job
 from .errors import ConfigError, InputError, PlanError
+from .io.csv import widest
+from .io.missing import SENTINEL_FLAG_PREFIX, check_sentinels, sentinel_flag
 from .io.readers import Source, expand_inputs, open_reader
 from .registry import RegisteredAnnotator, collect_annotators, load_registry
 
@@ -111,8 +113,7 @@ def build_plan(job: Job, pm=None) -> Plan:
 
     # -- inputs and cosmology --------------------------------------------------------
     sources = expand_inputs(job.inputs, job.input_format)
-    readers = [open_reader(s, delimiter=job.delimiter, column_types=job.column_types)
-               for s in sources]
+    readers = [open_reader(s, **job.reader_options()) for s in sources]
     schema = readers[0].schema
     for reader in readers[1:]:
         if set(reader.schema.names) != set(schema.names):
@@ -270,9 +271,18 @@ def build_plan(job: Job, pm=None) -> Plan:
                 continue
             col, how = found
             typ = schema.field(col).type
-            if not (pa.types.is_integer(typ) or pa.types.is_floating(typ)
-                    or pa.types.is_boolean(typ) or pa.types.is_decimal(typ)
-                    or pa.types.is_null(typ)) and logical not in getattr(inst, "text_inputs", ()):
+            text_ok = logical in getattr(inst, "text_inputs", ())
+            if hasattr(readers[0], "holds_numbers"):
+                # Text formats: a numeric input is read as numbers whatever its first rows
+                # look like; refused only when the sample holds values and none is a number.
+                if not text_ok and not readers[0].holds_numbers(col):
+                    raise PlanError(
+                        f"annotator {reg.cls.name!r} needs numbers for input {logical!r}, but "
+                        f"column {col!r} of {sources[0].path} holds no number in its first "
+                        f"rows")
+            elif not (pa.types.is_integer(typ) or pa.types.is_floating(typ)
+                      or pa.types.is_boolean(typ) or pa.types.is_decimal(typ)
+                      or pa.types.is_null(typ)) and not text_ok:
                 raise PlanError(
                     f"annotator {reg.cls.name!r} needs numbers for input {logical!r}, but "
                     f"column {col!r} of {sources[0].path} has type {typ}"
@@ -290,6 +300,31 @@ def build_plan(job: Job, pm=None) -> Plan:
             f"[columns].{unused[0]}: no enabled annotator reads an input of that name "
             f"(inputs and settings: {', '.join(known)})"
         )
+
+    # -- final input types: what the job reads as numbers is read as float64 -----------
+    numeric: set[str] = set()
+    for (inst, _), resolve in zip(configured, resolves):
+        text = set(getattr(inst, "text_inputs", ()))
+        for name, (kind, col) in resolve.items():
+            logical = name[len(OBSERVED_PREFIX):] if name.startswith(OBSERVED_PREFIX) else name
+            if kind == "catalogue" and logical not in text:
+                numeric.add(col)
+    # The first input's types rule (later inputs are cast to them, rows that cannot be set
+    # aside); only when it is a text format are they found from the values of every text input.
+    typed = [r.resolve_types(numeric) for r in readers if hasattr(r, "resolve_types")] \
+        if hasattr(readers[0], "resolve_types") else []
+    if typed:
+        fields = {f.name: f.type for f in typed[0]}
+        for other in typed[1:]:
+            for f in other:
+                if f.name in fields:
+                    fields[f.name] = widest(fields[f.name], f.type)
+        schema = pa.schema([pa.field(n, fields.get(n, schema.field(n).type))
+                            for n in schema.names])
+        exact = [r.exact_rows for r in readers if getattr(r, "exact_rows", None) is not None]
+        if len(exact) == len(readers):
+            estimated_rows = sum(exact)
+    check_sentinels(job.sentinels, schema, str(sources[0].path))
 
     # -- order: dependencies first, ties by position ------------------------------------
     order: list[int] = []
@@ -311,8 +346,18 @@ def build_plan(job: Job, pm=None) -> Plan:
         [pa.field(FLAGS_COLUMN.name, FLAGS_COLUMN.type)]
     flag_reasons: list[tuple[str, str, str]] = []
     seen_flags: set[str] = set()
+    for column, values in job.sentinels.items():
+        reason = sentinel_flag(column)
+        shown = ", ".join(repr(v) if isinstance(v, str) else f"{v:g}" for v in values)
+        flag_reasons.append((reason, f"{column} held a sentinel value ({shown}), read as null",
+                             "input"))
+        seen_flags.add(reason)
     for s in steps:
         for reason, desc in s.annotator.flags.items():
+            if reason.startswith(SENTINEL_FLAG_PREFIX) and reason in seen_flags and \
+                    not any(r == reason and o != "input" for r, _, o in flag_reasons):
+                raise PlanError(f"annotator {s.name!r} declares flag {reason!r}, which the "
+                                f"input's sentinels raise; rename the flag")
             if reason not in seen_flags:
                 seen_flags.add(reason)
                 flag_reasons.append((reason, desc, s.name))

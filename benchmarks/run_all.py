@@ -20,6 +20,7 @@ SCRIPTS = [
     ("bench_uncertainty.py", []),
     ("bench_sql.py", []),
     ("bench_dask.py", []),
+    ("bench_csv.py", []),
     ("bench_service.py", []),
 ]
 

@@ -283,7 +283,7 @@ def pending_work(plan, done: dict[int, set[int]]) -> Iterator[Chunk | ParquetChu
                 if k not in skip:
                     yield ParquetChunkTask(source, k, job.chunk_rows, plan.catalogue_schema)
             continue
-        reader = open_reader(source, delimiter=job.delimiter, column_types=job.column_types)
+        reader = open_reader(source, **job.reader_options())
         start = 0
         while start in skip:
             start += 1
@@ -358,7 +358,7 @@ def _probe(plan) -> pa.Table | None:
             if _parquet_chunk_count(source, PROBE_ROWS):
                 return read_parquet_chunk(source, 0, PROBE_ROWS, plan.catalogue_schema).table
             continue
-        reader = open_reader(source, delimiter=job.delimiter, column_types=job.column_types)
+        reader = open_reader(source, **job.reader_options())
         for chunk in reader.chunks(PROBE_ROWS, target=plan.catalogue_schema):
             return chunk.table
     return None

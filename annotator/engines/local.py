@@ -66,7 +66,7 @@ def iter_pending_chunks(plan, done: dict[int, set[int]]):
     """Every chunk not yet committed, source by source, in order."""
     job = plan.job
     for source in plan.sources:
-        reader = open_reader(source, delimiter=job.delimiter, column_types=job.column_types)
+        reader = open_reader(source, **job.reader_options())
         skip = done.get(source.index, set())
         start = 0
         while start in skip:

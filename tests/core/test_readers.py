@@ -10,7 +10,8 @@ import pyarrow.parquet as pq
 import pytest
 
 from annotator.errors import InputError
-from annotator.io.readers import CsvReader, ParquetReader, expand_inputs, open_reader
+from annotator.io.csv import CsvReader
+from annotator.io.readers import ParquetReader, expand_inputs, open_reader
 
 
 def _source(path, fmt="auto"):
@@ -93,16 +94,21 @@ def test_csv_sets_aside_bad_lines_with_their_line_numbers(tmp_path, gz):
     assert chunk.rows_read == 5
 
 
-def test_csv_type_inference_tolerates_a_stray_bad_value(tmp_path):
+def test_csv_numeric_input_sets_aside_a_stray_bad_value(tmp_path):
+    # A column the job reads as a number is float64; a cell that is not a number sets its
+    # row aside. The same column, not read as a number, keeps every row: it widens to text.
     lines = ["id,z"] + [f"{i},{0.001 * i}" for i in range(1, 3000)] + ["3000,oops"]
     path = tmp_path / "c.csv"
     path.write_text("\n".join(lines) + "\n")
-    reader = CsvReader(_source(path))
+    reader = CsvReader(_source(path), numeric={"z"})
     assert reader.schema.field("z").type == pa.float64()
     assert reader.schema.field("id").type == pa.int64()
     chunks = list(reader.chunks(1000))
     assert sum(c.table.num_rows for c in chunks) == 2999
     assert [r["row"] for c in chunks for r in c.rejected] == [3001]
+    untyped = CsvReader(_source(path))
+    assert untyped.schema.field("z").type == pa.string()
+    assert sum(c.table.num_rows for c in untyped.chunks(1000)) == 3000
 
 
 def test_csv_chunks_are_exact_and_resumable(tmp_path):
