@@ -31,6 +31,8 @@ from pathlib import Path
 # One core: pin the BLAS pools before numpy loads (the numpy work here is single-threaded).
 for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(var, "1")
+# "build s" times building the tables: no on-disk cache (bench_ktable_cache.py measures that).
+os.environ["ANNOTATOR_KTABLE_CACHE"] = "off"
 
 import numpy as np  # noqa: E402
 import pyarrow as pa  # noqa: E402

@@ -16,6 +16,8 @@ SCRIPTS = [
     ("bench_cosmology.py", []),
     ("bench_pipeline.py", []),
     ("bench_kcorrection.py", []),
+    ("bench_ktable_cache.py", []),
+    ("bench_recovery.py", []),
     ("bench_luminosity_function.py", []),
     ("bench_uncertainty.py", []),
     ("bench_sql.py", []),

@@ -31,7 +31,12 @@ Module use: :func:`generate` (whole files, chunked, bounded memory), :class:`Sur
 (the tabulated model and :meth:`SurveyModel.draw_galaxies`).  CLI::
 
     python sample_catalogues/generate.py --rows N --out FILE [--format parquet|csv|csv.gz]
-        [--seed S] [--cosmology PRESET] [--first-id ID] [--malformed K]
+        [--seed S] [--cosmology PRESET] [--first-id ID] [--malformed K] [--truth]
+
+``--truth`` adds, in the same rows after the observed columns, ``true_z``, ``true_sed``,
+``true_distance_modulus_mag``, ``true_absolute_magnitude_<band>_mag`` (rest-frame, AB) and
+``true_mag_<band>`` (noiseless apparent): see :func:`truth_columns`. Malformed CSV lines stay
+malformed, with the truth after them.
 """
 
 from __future__ import annotations
@@ -379,6 +384,19 @@ class SurveyModel:
         counts = np.array([self.expected_counts[t.name] for t in self.types])
         return counts / counts.sum()
 
+    @cached_property
+    def rest_colours_direct(self) -> np.ndarray:
+        """(types, bands): rest-frame colours m_band - m_amber of each type's SED by direct
+        synthetic photometry at z = 0 (not from the K tables)."""
+        qwl, qr = self.filters[SELECTION_BAND]
+        out = np.empty((len(self.types), len(BANDS)))
+        for i, t in enumerate(self.types):
+            swl, sf = self.seds[t.name]
+            for b, band in enumerate(BANDS):
+                out[i, b] = float(kcorrection_curve(swl, sf, *self.filters[band], [0.0],
+                                                    rest_filter=(qwl, qr))[0])
+        return out
+
     def rest_colour(self, type_name: str, band: str) -> float:
         """Rest-frame colour m_band - m_amber of a type (K_amber->band at z = 0)."""
         return float(self.kcorrection(type_name, band, np.array([0.0]))[0])
@@ -474,9 +492,20 @@ def _round_float32(values: np.ndarray, decimals: int) -> pa.Array:
 
 
 def make_chunk(model: SurveyModel, seed: int, chunk_index: int, first_row: int, n: int,
-               local_rows: np.ndarray, first_id: int) -> pa.Table:
+               local_rows: np.ndarray, first_id: int, truth: bool = False) -> pa.Table:
     """Rows ``first_row .. first_row + n`` of the catalogue of ``seed`` (chunk ``chunk_index``
-    has its own random stream, so chunks can be made in any order)."""
+    has its own random stream, so chunks can be made in any order). With ``truth``, the
+    :func:`truth_columns` follow the observed ones (they draw no random numbers, so the
+    observed columns are the same with or without them)."""
+    table, gal = _observed_chunk(model, seed, chunk_index, first_row, n, local_rows, first_id)
+    if truth:
+        for name, column in truth_columns(model, gal).items():
+            table = table.append_column(truth_field(name), column)
+    return table
+
+
+def _observed_chunk(model: SurveyModel, seed: int, chunk_index: int, first_row: int, n: int,
+                    local_rows: np.ndarray, first_id: int) -> tuple[pa.Table, dict]:
     rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(chunk_index + 1,)))
     gal = model.draw_galaxies(rng, n)
     local = local_rows[(local_rows >= first_row) & (local_rows < first_row + n)] - first_row
@@ -515,7 +544,61 @@ def make_chunk(model: SurveyModel, seed: int, chunk_index: int, first_row: int, 
         columns[f"mag_{band}"] = _round_float32(mag[:, b], 4)
         columns[f"magerr_{band}"] = _round_float32(err[:, b], 4)
     columns["sed_type"] = _labels([t.name for t in model.types], gal["type_index"])
-    return pa.Table.from_pydict(columns, schema=schema())
+    return pa.Table.from_pydict(columns, schema=schema()), gal
+
+
+# -- the truth beside the observations ---------------------------------------------------------
+def truth_column_names() -> list[str]:
+    return (["true_z", "true_sed", "true_distance_modulus_mag"]
+            + [f"true_absolute_magnitude_{b}_mag" for b in BANDS]
+            + [f"true_mag_{b}" for b in BANDS])
+
+
+def truth_field(name: str) -> pa.Field:
+    """Arrow field of a truth column (units and meaning in the field metadata)."""
+    if name == "true_sed":
+        return pa.field(name, pa.string(), False, {
+            "unit": "", "description": "SED the object was drawn from (a pure template: "
+                                       "mixture weight 1)"})
+    if name == "true_z":
+        return pa.field(name, pa.float64(), False, {
+            "unit": "", "description": "true (cosmological) redshift, before any error"})
+    if name == "true_distance_modulus_mag":
+        return pa.field(name, pa.float64(), False, {
+            "unit": "mag", "description": "distance modulus at true_z in the generator's "
+                                          "cosmology (its distance for the local galaxies)"})
+    if name.startswith("true_absolute_magnitude_"):
+        band = name.removeprefix("true_absolute_magnitude_").removesuffix("_mag")
+        return pa.field(name, pa.float64(), False, {
+            "unit": "mag", "description": f"true rest-frame AB absolute magnitude in the "
+                                          f"{band} band (rest-frame {band} filter)"})
+    band = name.removeprefix("true_mag_")
+    return pa.field(name, pa.float64(), False, {
+        "unit": "mag", "description": f"true apparent AB magnitude in the {band} band, "
+                                      f"before noise"})
+
+
+def truth_columns(model: SurveyModel, gal: dict) -> dict[str, pa.Array]:
+    """The truth of the drawn galaxies (no random numbers drawn).
+
+    A galaxy is drawn with an absolute amber magnitude M_amber (rest-frame amber); its
+    rest-frame absolute magnitude in band b is ``M_b = M_amber + (m_b - m_amber)_rest``, the
+    rest-frame colour of its SED by direct synthetic photometry at z = 0 (Hogg et al. 2002,
+    astro-ph/0210394, eqs. 8 and 9 with z = 0; AB as in Oke & Gunn 1983, ApJ 266, 713). So
+    ``m_b = M_b + mu + K_bb(z)`` holds with the K-correction of the same SED (eq. 13:
+    K_amber->b(z) - K_amber->b(0) = K_bb(z))."""
+    types = gal["type_index"].astype(np.intp)
+    out: dict[str, pa.Array] = {
+        "true_z": pa.array(gal["z"]),
+        "true_sed": _labels([t.name for t in model.types], types),
+        "true_distance_modulus_mag": pa.array(gal["distance_modulus"]),
+    }
+    rest = model.rest_colours_direct
+    for b, band in enumerate(BANDS):
+        out[f"true_absolute_magnitude_{band}_mag"] = pa.array(gal["abs_mag"] + rest[types, b])
+    for b, band in enumerate(BANDS):
+        out[f"true_mag_{band}"] = pa.array(gal["mag"][:, b])
+    return out
 
 
 # -- malformed CSV lines ------------------------------------------------------------------------
@@ -559,9 +642,13 @@ def _format_of(path: Path, fmt: str | None) -> str:
 
 def generate(rows: int, out: str | Path, *, fmt: str | None = None, seed: int = DEFAULT_SEED,
              cosmology: str = DEFAULT_COSMOLOGY, first_id: int = 1,
-             malformed: int = DEFAULT_MALFORMED_LINES, model: SurveyModel | None = None) -> dict:
+             malformed: int = DEFAULT_MALFORMED_LINES, model: SurveyModel | None = None,
+             truth: bool = False) -> dict:
     """Write a catalogue of ``rows`` rows to ``out`` (atomically: temporary name, then rename)
-    and return a summary (rows, timings, the malformed lines written, counts by kind)."""
+    and return a summary (rows, timings, the malformed lines written, counts by kind).
+
+    ``truth``: also write the ``true_*`` columns of :func:`truth_columns` after the observed
+    ones, in the same rows (the observed columns are identical either way)."""
     if not isinstance(rows, int) or rows < 1:
         raise ValueError(f"--rows: expected a positive integer, got {rows!r}")
     out = Path(out)
@@ -580,18 +667,24 @@ def generate(rows: int, out: str | Path, *, fmt: str | None = None, seed: int = 
         "selection": f"{SELECTION_BAND} < {SELECTION_LIMIT_MAG} (true magnitude)",
         "note": "invented data: a fictional survey, not observations",
     }
+    if truth:
+        metadata["truth_columns"] = truth_column_names()
     tmp = out.with_name(out.name + ".tmp")
     out.parent.mkdir(parents=True, exist_ok=True)
     counts = {"spec": 0, "phot": 0, "none": 0, "negative_z": 0}
     try:
         if kind == "parquet":
-            sch = schema().with_metadata({"quillfield.generator": json.dumps(metadata)})
+            sch = schema()
+            if truth:
+                for name in truth_column_names():
+                    sch = sch.append(truth_field(name))
+            sch = sch.with_metadata({"quillfield.generator": json.dumps(metadata)})
             # dictionary encoding only where values repeat (labels, 4-decimal errors): on the
             # other float columns it costs three times the write time and saves nothing
             dictionary = ["z_type", "sed_type"] + [f"magerr_{b}" for b in BANDS]
             with pq.ParquetWriter(tmp, sch, compression="zstd",
                                   use_dictionary=dictionary) as writer:
-                for table in _chunks(model, seed, rows, local_rows, first_id, counts):
+                for table in _chunks(model, seed, rows, local_rows, first_id, counts, truth):
                     writer.write_table(table.replace_schema_metadata(sch.metadata))
         else:
             raw = open(tmp, "wb")
@@ -599,8 +692,9 @@ def generate(rows: int, out: str | Path, *, fmt: str | None = None, seed: int = 
                                  mtime=0) if kind == "csv.gz" else raw
             try:
                 first_row = 0
-                sink.write((",".join(COLUMN_ORDER) + "\n").encode())
-                for table in _chunks(model, seed, rows, local_rows, first_id, counts):
+                header = COLUMN_ORDER + (truth_column_names() if truth else [])
+                sink.write((",".join(header) + "\n").encode())
+                for table in _chunks(model, seed, rows, local_rows, first_id, counts, truth):
                     buf = io.BytesIO()
                     pacsv.write_csv(table, buf, pacsv.WriteOptions(
                         include_header=False, quoting_style="none"))
@@ -631,10 +725,10 @@ def generate(rows: int, out: str | Path, *, fmt: str | None = None, seed: int = 
     }
 
 
-def _chunks(model, seed, rows, local_rows, first_id, counts):
+def _chunks(model, seed, rows, local_rows, first_id, counts, truth=False):
     for index, first_row in enumerate(range(0, rows, CHUNK_ROWS)):
         n = min(CHUNK_ROWS, rows - first_row)
-        table = make_chunk(model, seed, index, first_row, n, local_rows, first_id)
+        table = make_chunk(model, seed, index, first_row, n, local_rows, first_id, truth)
         for item in pc.value_counts(table.column("z_type")).to_pylist():
             counts[item["values"]] += item["counts"]
         counts["negative_z"] += pc.sum(pc.less(table.column("z"), 0.0)).as_py() or 0
@@ -664,13 +758,16 @@ def main(argv: list[str] | None = None) -> int:
                         help="object_id of the first row (default 1)")
     parser.add_argument("--malformed", type=int, default=DEFAULT_MALFORMED_LINES, metavar="K",
                         help="malformed lines to write into CSV output (default 8)")
+    parser.add_argument("--truth", action="store_true",
+                        help="also write the true redshift, SED and rest-frame absolute "
+                             "magnitudes (columns true_*) beside the observations")
     args = parser.parse_args(argv)
     if args.malformed < 0:
         parser.error("--malformed: must be 0 or more")
     try:
         summary = generate(args.rows, args.out, fmt=args.format, seed=args.seed,
                            cosmology=args.cosmology, first_id=args.first_id,
-                           malformed=args.malformed)
+                           malformed=args.malformed, truth=args.truth)
     except (ValueError, CosmologyError, OSError) as exc:
         print(f"generate.py: error: {exc}", file=sys.stderr)
         return 2

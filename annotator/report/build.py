@@ -13,7 +13,8 @@ import numpy as np
 from .. import __version__
 from ..errors import ConfigError, OutputError
 from . import page
-from .data import (REACHABLE, UNKNOWN, UNREACHABLE, Output, Sample, draw_sample, open_output,
+from .data import (FLAGS_COLUMN, REACHABLE, UNKNOWN, UNREACHABLE, Output, Sample, band_counts,
+                   band_flag_names, draw_sample, flagged_in_sample, open_output,
                    redshift_aggregate, rejected_summary)
 
 DEFAULT_SAMPLE_ROWS = 20_000
@@ -387,7 +388,8 @@ def build_report(folder: str | Path, to: str | Path, *, sample_rows: int = DEFAU
     t1 = time.perf_counter()
     zc = out.redshift_column
     wanted = [c for c in (zc, out.ra_column, out.dec_column) if c] + \
-        [c for c in CHECKED_COLUMNS if out.has(c)] + list(out.bands.values())
+        [c for c in CHECKED_COLUMNS if out.has(c)] + list(out.bands.values()) + \
+        ([FLAGS_COLUMN] if out.bands and out.has(FLAGS_COLUMN) else [])
     sample = draw_sample(out, wanted, sample_rows, seed)
     timings["sample_s"] = time.perf_counter() - t1
     z = sample.get(zc) if zc else None
@@ -479,15 +481,30 @@ def build_report(folder: str | Path, to: str | Path, *, sample_rows: int = DEFAU
         "(see the check below). " + (sample_line if zc else "") + mu_note))
     if out.bands and zc:
         band_values = {b: sample.get(c) for b, c in out.bands.items()}
-        png = figures.absolute_magnitudes(z, band_values)
+        known_flags = list(((out.manifest.get("flags") or {}).get("counts") or {}))
+        flag_text = sample.get(FLAGS_COLUMN)
+        band_flagged, band_totals, flag_lists = {}, {}, {}
+        for b, c in out.bands.items():
+            names = band_flag_names(b, list(out.bands), known_flags)
+            flag_lists[b] = names
+            band_flagged[b] = flagged_in_sample(flag_text, names)
+            band_totals[b] = band_counts(out, c, names)
+        png = figures.absolute_magnitudes(z, band_values, band_flagged, band_totals)
         figs.append("absolute-magnitudes")
+        refused = "; ".join(
+            f"band {page.esc(b)}: {t.null_flagged:,} refused, {t.given_flagged:,} kept with a "
+            f"warning" for b, t in band_totals.items())
         hubble_parts.append(page.figure(
             "absolute-magnitudes", png, "Absolute magnitude against redshift, per band",
             "K-corrected absolute magnitudes (columns "
             + ", ".join(f"<code>{page.esc(c)}</code>" for c in out.bands.values())
             + "). A flux-limited survey sees only ever brighter objects at higher redshift: "
-            "the dashed line, the 98th percentile of M in redshift bins of the sample, traces "
-            "that faint edge. " + sample_line))
+            "the dashed line, the 98th percentile of unflagged M in redshift bins of the "
+            "sample, traces that faint edge. Rows whose value carries a flag of its band "
+            "(e.g. a colour clipped to a template) are drawn apart as orange triangles; rows "
+            "whose K-correction was refused (null, with a flag naming why) cannot be drawn "
+            "and are counted instead, over every row of the output (" + refused + "). "
+            + sample_line))
     else:
         why = "no redshift column" if not zc else \
             "no absolute_magnitude_<band>_mag columns (the K-correction annotator did not run)"

@@ -389,7 +389,13 @@ def draw_sample(out: Output, columns: list[str], n: int, seed: int,
                 take = pa.array(picks[lo:hi] - start)
                 sub = batch.take(take)
                 for c in columns:
-                    pieces[c].append(_as_float(sub.column(c)))
+                    col = sub.column(c)
+                    if pa.types.is_string(col.type) or pa.types.is_large_string(col.type):
+                        # text (the flags column): kept as text, null as ""
+                        pieces[c].append(np.asarray(col.fill_null("").to_pylist(),
+                                                    dtype=object))
+                    else:
+                        pieces[c].append(_as_float(col))
             start = stop
     values = {c: (np.concatenate(v) if v else np.zeros(0)) for c, v in pieces.items()}
     if "reachable" in values:
@@ -399,3 +405,67 @@ def draw_sample(out: Output, columns: list[str], n: int, seed: int,
         reach = np.full(n, UNKNOWN)
     return Sample(values=values, reach=reach.astype(np.int8), size=n, population=population,
                   seed=seed)
+
+
+# ------------------------------------------------------------- absolute magnitudes and flags
+FLAGS_COLUMN = "annotation_flags"
+
+
+def band_flag_names(band: str, bands: list[str], known: list[str]) -> list[str]:
+    """The flags (of ``known``) that concern band ``band``'s absolute magnitude: its
+    ``kcorrection_<band>_*`` and ``magnitude_<band>_missing`` flags, not those of a band
+    whose name merely starts with it (``amber`` versus ``amber_from_crimson``)."""
+    longer = [b for b in bands if b != band and b.startswith(band + "_")]
+    out = []
+    for name in known:
+        for prefix in (f"kcorrection_{band}_", f"magnitude_{band}_"):
+            if name.startswith(prefix) and not any(
+                    name.startswith(prefix.replace(band, other, 1)) for other in longer):
+                out.append(name)
+    return out
+
+
+def flagged_in_sample(flags_text: np.ndarray | None, names: list[str]) -> np.ndarray:
+    """Per sampled row, whether its flags column holds any of ``names`` (';'-separated)."""
+    if flags_text is None:
+        return np.zeros(0, dtype=bool)
+    wanted = set(names)
+    return np.fromiter((bool(wanted.intersection(t.split(";"))) if t else False
+                        for t in flags_text), dtype=bool, count=len(flags_text))
+
+
+@dataclass
+class BandCounts:
+    """Over every written row: absolute magnitudes given, given but flagged (a warning flag
+    such as a clipped colour), and null with a usable redshift (refused, flagged)."""
+
+    given: int
+    given_flagged: int
+    null_flagged: int
+    null_unflagged: int
+
+
+def band_counts(out: Output, column: str, flag_names: list[str]) -> BandCounts:
+    """Counts over the whole output by DuckDB (not the sample)."""
+    files = [str(p) for p in out.parts]
+    if FLAGS_COLUMN in out.schema.names and flag_names:
+        pattern = "|".join(re.escape(n) for n in flag_names)
+        flagged = f"regexp_matches({FLAGS_COLUMN}, '(^|;)({pattern})(;|$)')"
+    else:
+        flagged = "false"
+    has_distance = "distance_modulus_mag IS NOT NULL" if out.has("distance_modulus_mag") \
+        else "true"
+    con = _connect()
+    try:
+        row = con.execute(
+            f'SELECT count(*) FILTER (WHERE "{column}" IS NOT NULL AND NOT isnan("{column}")), '
+            f'count(*) FILTER (WHERE "{column}" IS NOT NULL AND NOT isnan("{column}") '
+            f'AND coalesce({flagged}, false)), '
+            f'count(*) FILTER (WHERE ("{column}" IS NULL OR isnan("{column}")) AND '
+            f'{has_distance} AND coalesce({flagged}, false)), '
+            f'count(*) FILTER (WHERE ("{column}" IS NULL OR isnan("{column}")) AND '
+            f'{has_distance} AND NOT coalesce({flagged}, false)) '
+            f"FROM read_parquet(?)", [files]).fetchone()
+    finally:
+        con.close()
+    return BandCounts(*(int(v or 0) for v in row))

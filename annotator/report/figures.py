@@ -362,24 +362,51 @@ def faint_edge(z: np.ndarray, m: np.ndarray, bins: int = 24, q: float = 98.0,
     return np.asarray(zc), np.asarray(mc)
 
 
-def absolute_magnitudes(z_sample: np.ndarray, bands: dict[str, np.ndarray]) -> bytes:
-    """Per band, absolute magnitude against redshift (brighter up)."""
+def absolute_magnitudes(z_sample: np.ndarray, bands: dict[str, np.ndarray],
+                        flagged: dict[str, np.ndarray] | None = None,
+                        counts: dict | None = None) -> bytes:
+    """Per band, absolute magnitude against redshift (brighter up).
+
+    ``flagged[band]`` marks sampled rows whose value carries a flag of that band (kept, but
+    warned about, e.g. a clipped colour): drawn apart, in another colour and marker, and left
+    out of the faint edge. ``counts[band]`` (a :class:`~.data.BandCounts` over the whole
+    output) is written under each panel, with the rows whose value was refused (null with a
+    flag), which cannot be drawn."""
+    flagged = flagged or {}
+    counts = counts or {}
     n = len(bands)
     cols = min(n, 3)
     rows = int(math.ceil(n / cols))
     with style():
-        fig = new_figure(8.6, 3.3 * rows + 0.6)
+        fig = new_figure(8.6, 3.5 * rows + 0.8)
         axes = fig.subplots(rows, cols, squeeze=False, sharex=True, sharey=True)
         size = _point_size(len(z_sample))
+        any_flagged = False
         for k, (band, m) in enumerate(bands.items()):
             ax = axes[k // cols][k % cols]
             ok = np.isfinite(z_sample) & np.isfinite(m)
-            ax.scatter(z_sample[ok], m[ok], s=size, c=BLUE, alpha=0.35, linewidths=0)
-            ze, me = faint_edge(z_sample, m)
+            warn = flagged.get(band)
+            warn = np.zeros_like(ok) if warn is None or len(warn) != len(ok) else warn & ok
+            clean = ok & ~warn
+            ax.scatter(z_sample[clean], m[clean], s=size, c=BLUE, alpha=0.35, linewidths=0)
+            if warn.any():
+                any_flagged = True
+                ax.scatter(z_sample[warn], m[warn], s=size * 1.6, c=ORANGE, alpha=0.55,
+                           marker="^", linewidths=0)
+            ze, me = faint_edge(z_sample[clean], m[clean])
             if len(ze):
                 ax.plot(ze, me, color="white", lw=3.2)
                 ax.plot(ze, me, color=BLACK, lw=1.5, ls="--", marker="o", ms=3)
-            ax.set_title(f"band {band}  ({int(ok.sum()):,} sampled objects)", fontsize=10)
+            ax.set_title(f"band {band}  ({int(clean.sum()):,} + {int(warn.sum()):,} "
+                         f"flagged sampled)", fontsize=9)
+            c = counts.get(band)
+            if c is not None:
+                ax.text(0.02, 0.02, f"all rows: {c.given:,} values, {c.given_flagged:,} of "
+                        f"them flagged;\n{c.null_flagged:,} refused (null, flagged), not "
+                        f"drawn" + (f"; {c.null_unflagged:,} null unflagged"
+                                    if c.null_unflagged else ""),
+                        transform=ax.transAxes, fontsize=7.5, color=BLACK, va="bottom",
+                        bbox={"facecolor": "white", "alpha": 0.8, "lw": 0})
             if k % cols == 0:
                 ax.set_ylabel("absolute magnitude $M$ (mag)")
             if k // cols == rows - 1:
@@ -395,10 +422,13 @@ def absolute_magnitudes(z_sample: np.ndarray, bands: dict[str, np.ndarray]) -> b
         from matplotlib.lines import Line2D
 
         handles = [Line2D([], [], ls="none", marker="o", ms=5, color=BLUE, alpha=0.6,
-                          label="catalogue objects (sample)"),
-                   Line2D([], [], ls="--", marker="o", ms=3, lw=1.5, color=BLACK,
-                          label="faint edge: 98th percentile of M per redshift bin")]
-        fig.legend(handles=handles, loc="outside lower center", ncol=2)
+                          label="unflagged (sample)")]
+        if any_flagged:
+            handles.append(Line2D([], [], ls="none", marker="^", ms=5, color=ORANGE,
+                                  alpha=0.8, label="kept but flagged (sample)"))
+        handles.append(Line2D([], [], ls="--", marker="o", ms=3, lw=1.5, color=BLACK,
+                              label="faint edge (98th percentile, unflagged)"))
+        fig.legend(handles=handles, loc="outside lower center", ncol=min(3, len(handles)))
         return to_png(fig)
 
 

@@ -33,7 +33,7 @@ from .._redshift import REDSHIFT_HINTS
 from . import extinction as _ext
 from . import vmax as _vmax
 from .methods import (
-    LN10, Method, Polynomial, PowerLaw, PowerLawFromColour, Template,
+    DEFAULT_ASSUMED_COLOUR_ERROR_MAG, DEFAULT_MAX_K_SPREAD_MAG, LN10, Method, Polynomial, PowerLaw, PowerLawFromColour, Template,
     TemplateMix,
 )
 from .tables import (
@@ -51,7 +51,9 @@ METHOD_KEYS = {
     "power_law": ("method", "alpha", "z_max"),
     "power_law_colour": ("method", "colour", "alpha_range", "z_max"),
     "template": ("method", "sed", "z_max"),
-    "template_mix": ("method", "seds", "colour", "z_max", "clip_tolerance_mag"),
+    "template_mix": ("method", "seds", "colour", "z_max", "clip_tolerance_mag",
+                     "clip_tolerance_sigma", "max_kcorrection_spread_mag",
+                     "assumed_colour_error_mag"),
     "polynomial": ("method", "coefficients", "colour", "z_max", "colour_range"),
 }
 OPTIONS = ("tolerance_mag", "use_redshift_error", "extinction_law", "extinction_r_v") + \
@@ -249,7 +251,13 @@ class KCorrection(Annotator):
             if method.colour is not None:
                 p, q = method.colour
                 colour = mags[p] - mags[q]
-            k, flags = method.evaluate(z, colour)
+            if isinstance(method, TemplateMix):
+                # the colour's own error widens the mixture's clipping tolerance
+                p, q = method.colour
+                colour_err = np.hypot(errs[p], errs[q]) if p in errs and q in errs else None
+                k, flags = method.evaluate(z, colour, colour_err)
+            else:
+                k, flags = method.evaluate(z, colour)
             for suffix, mask in flags.items():
                 if mask.any():  # the core's flag bookkeeping costs a pass; skip empty masks
                     batch.flag(f"kcorrection_{b.name}_{suffix}", mask)
@@ -273,6 +281,7 @@ class KCorrection(Annotator):
             if b.error_input:
                 out[f"absolute_magnitude_{b.name}_err_mag"] = self._error(
                     b, z, colour, errs, z_err, dmu_dz, absolute)
+            method.release()  # the weights kept for the error column are not needed now
         return out
 
     def _dmu_dz(self, z: np.ndarray) -> np.ndarray:
@@ -379,7 +388,9 @@ def _method(setup, band: BandSpec, spec, bands: dict[str, BandSpec], tolerance: 
                           f"{', '.join(METHOD_KEYS[kind])})")
     for required in METHOD_KEYS[kind][1:]:
         optional = required in ("z_max", "alpha_range", "colour_range",
-                                "clip_tolerance_mag") and not (
+                                "clip_tolerance_mag", "clip_tolerance_sigma",
+                                "max_kcorrection_spread_mag",
+                                "assumed_colour_error_mag") and not (
             kind == "polynomial" and required == "z_max")
         if required not in spec and not optional:
             raise setup.error(f"{key}.{required}", f"missing (method {kind!r} needs "
@@ -456,8 +467,29 @@ def _method(setup, band: BandSpec, spec, bands: dict[str, BandSpec], tolerance: 
                        what="a colour difference in mag, >= 0")
         if clip < 0:
             raise setup.error(f"{key}.clip_tolerance_mag", f"expected >= 0, got {clip:g}")
+    spread = DEFAULT_MAX_K_SPREAD_MAG
+    if "max_kcorrection_spread_mag" in spec:
+        spread = _number(setup, f"{key}.max_kcorrection_spread_mag",
+                         spec["max_kcorrection_spread_mag"], what="a magnitude difference > 0")
+        if spread <= 0:
+            raise setup.error(f"{key}.max_kcorrection_spread_mag", f"expected > 0, got "
+                              f"{spread:g}")
+    assumed = DEFAULT_ASSUMED_COLOUR_ERROR_MAG
+    if "assumed_colour_error_mag" in spec:
+        assumed = _number(setup, f"{key}.assumed_colour_error_mag",
+                          spec["assumed_colour_error_mag"], what="a colour error in mag, >= 0")
+        if assumed < 0:
+            raise setup.error(f"{key}.assumed_colour_error_mag", f"expected >= 0, got "
+                              f"{assumed:g}")
+    clip_sigma = 2.0
+    if "clip_tolerance_sigma" in spec:
+        clip_sigma = _number(setup, f"{key}.clip_tolerance_sigma", spec["clip_tolerance_sigma"],
+                             what="a number of standard deviations, >= 0")
+        if clip_sigma < 0:
+            raise setup.error(f"{key}.clip_tolerance_sigma", f"expected >= 0, got "
+                              f"{clip_sigma:g}")
     return TemplateMix.build(seds, band.filter, rest, colour, colour_filters, z_max, key,
-                             tolerance, clip)
+                             tolerance, clip, spread, clip_sigma, assumed)
 
 
 def _coefficients(setup, key: str, value) -> np.ndarray:

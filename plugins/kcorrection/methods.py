@@ -20,6 +20,7 @@ Every method returns K with NaN where it has no value, and a mask per flag suffi
 from __future__ import annotations
 
 import math
+import threading
 from dataclasses import dataclass
 from typing import ClassVar
 
@@ -28,7 +29,7 @@ import numpy as np
 from annotator.errors import ConfigError
 
 from .synthetic import ab_maggies
-from .tables import Curve, Filter, Grid, Tabulated, tabulate
+from .tables import Curve, Filter, Grid, Tabulated, cached_table, tabulate
 
 LN10 = math.log(10.0)
 #: Flag suffixes a method may raise (the annotator prefixes ``kcorrection_<band>_``).
@@ -36,6 +37,12 @@ OUTSIDE_Z = "outside_redshift_range"
 COLOUR_MISSING = "colour_missing"
 COLOUR_OUTSIDE = "colour_outside_range"
 COLOUR_CLIPPED = "colour_clipped"
+COLOUR_DEGENERATE = "colour_degenerate"
+COLOUR_INSENSITIVE = "colour_insensitive"
+#: Default bound on the spread of a template mixture's K over the colour's +-1 sigma (mag).
+DEFAULT_MAX_K_SPREAD_MAG = 0.5
+#: The colour error assumed when the magnitude errors are not known (mag).
+DEFAULT_ASSUMED_COLOUR_ERROR_MAG = 0.05
 
 
 def _mag_error(guess: np.ndarray, exact: np.ndarray) -> np.ndarray:
@@ -68,6 +75,9 @@ class Method:
 
     def describe(self) -> str:
         raise NotImplementedError
+
+    def release(self) -> None:
+        """Drop anything kept from the last batch (called by the annotator after each band)."""
 
     def evaluate(self, z: np.ndarray, colour: np.ndarray | None
                  ) -> tuple[np.ndarray, dict[str, np.ndarray]]:
@@ -309,7 +319,10 @@ class Template(Method):
             _check_flux(m, z, sed, filt, key)
             return -2.5 * np.log10(m / rest_maggies)
 
-        table = tabulate([k_of_z], z_max, error=_mag_error, tolerance=tolerance)
+        parts = {"method": cls.kind, "sed": sed, "filter": filt, "rest": rest, "z_max": z_max,
+                 "tolerance": tolerance}
+        table = cached_table(parts, lambda: tabulate([k_of_z], z_max, error=_mag_error,
+                                                     tolerance=tolerance))
         return cls(table=table, sed_path=sed.path, z_max=z_max)
 
     def describe(self) -> str:
@@ -335,6 +348,27 @@ class Template(Method):
         return k
 
 
+@dataclass
+class MixSolution:
+    """What :meth:`TemplateMix.solve` found for a batch: reused by :meth:`TemplateMix.evaluate`
+    and :meth:`TemplateMix.derivatives` so the weights are found once per batch."""
+
+    idx: np.ndarray
+    frac: np.ndarray
+    inside: np.ndarray  # 0 <= z <= z_max
+    fluxes: dict  # filter role ("r", "p", "q") -> (F^A, F^B) at each row
+    rho: np.ndarray  # 10^(-0.4 c)
+    w: np.ndarray  # weight of template B, in [0, 1]; NaN where refused
+    free: np.ndarray  # the colour lies between the templates' (w solved, not clamped)
+    clipped: np.ndarray  # beyond a template's colour by <= clip_tolerance_mag: its K
+    outside: np.ndarray  # beyond by more: null K
+    degenerate: np.ndarray  # both templates have the same colour here: null K
+    insensitive: np.ndarray  # K spread over the colour's +-1 sigma above the bound; null K
+    sensitivity: np.ndarray  # dK/dc at the mixture found (NaN where there is none)
+    spread: np.ndarray  # |K(c + sigma) - K(c - sigma)| (mag)
+    missing: np.ndarray  # no colour
+
+
 @dataclass(kw_only=True)
 class TemplateMix(Method):
     """Per object, the mixture (1 - w) A + w B (0 <= w <= 1) of two SEDs, each scaled to unit
@@ -345,10 +379,33 @@ class TemplateMix(Method):
     templates in every filter X the colour condition
     ``F_p(w) / F_q(w) = 10^(-0.4 c)`` is linear in w and solves in closed form:
     ``w = a / (a - b)``, ``a = F_p^A - rho F_q^A``, ``b = F_p^B - rho F_q^B``.
-    A colour outside the two templates' colours at that redshift is clipped to the nearer
-    template, and flagged when it lies more than ``clip_tolerance_mag`` beyond that
-    template's colour (photometric noise alone scatters about half of the objects of the
-    bluest and of the reddest type a little beyond them).
+
+    The mixture's colour ``c(w) = -2.5 log10((F_p^A + w dF_p) / (F_q^A + w dF_q))`` is a ratio
+    of two linear functions of w, positive on 0 <= w <= 1, so its derivative
+    ``dc/dw ~ -(dF_p F_q^A - dF_q F_p^A) / (F_p(w) F_q(w))`` has one sign there: the colour is
+    strictly monotonic in w from template A's colour to template B's, unless the two colours
+    are equal (then it is constant and the colour cannot choose a mixture: refused, flag
+    ``colour_degenerate``). So the observed colour is placed by comparing it with the two
+    templates' colours at its redshift (never by the sign of w, which wraps through infinity
+    for colours beyond the templates'):
+
+    * between them: w solved, K of the mixture;
+    * beyond the nearer template's colour by at most the tolerance -- ``clip_tolerance_mag``,
+      or ``clip_tolerance_sigma`` times the colour's own error when the annotator has the
+      magnitude errors, whichever is larger: that template's K, flagged ``colour_clipped``
+      (the value is kept: photometric noise alone scatters about half of the objects of the
+      bluest and of the reddest type a little beyond them);
+    * beyond it by more: null K and absolute magnitude, flag ``colour_outside_range`` (no
+      extrapolated or end-member K is ever returned unflagged);
+    * where the colour cannot fix K: the K of the mixtures matching the colour plus and
+      minus its error (the annotator's magnitude errors in quadrature, else
+      ``assumed_colour_error_mag``; each clamped to the templates' range) differ by more
+      than ``max_kcorrection_spread_mag``: null K, flag ``colour_insensitive``. The local
+      slope ``dK/dc = (dF_R / F_R) / (dF_p / F_p - dF_q / F_q)`` shows why: with the demo
+      survey's early and star-forming templates and amber - infrared it exceeds 10 mag per
+      mag near the star-forming end at z ~ 2, where the early template adds infrared light
+      but almost no observed amber light, so a colour error of a tenth of a magnitude moves
+      K by magnitudes.
     """
 
     colour: tuple[str, str]
@@ -357,12 +414,36 @@ class TemplateMix(Method):
     sed_paths: tuple[str, str]
     z_max: float
     clip_tolerance_mag: float = 0.1
+    #: Templates whose colours differ by less than this (mag) do not determine a mixture.
+    degenerate_mag: float = 1e-3
+    #: A colour this close (mag) to a template's is taken as that template's, unflagged.
+    on_template_mag: float = 1e-4
+    max_k_spread_mag: float = DEFAULT_MAX_K_SPREAD_MAG
+    assumed_colour_error_mag: float = DEFAULT_ASSUMED_COLOUR_ERROR_MAG
+    clip_tolerance_sigma: float = 2.0
     kind: ClassVar[str] = "template_mix"
+
+    def __post_init__(self) -> None:
+        self._last = threading.local()
+
+    # The per-thread memo of the last batch's weights is not sent to Dask workers.
+    def __getstate__(self) -> dict:
+        state = dict(self.__dict__)
+        state.pop("_last", None)
+        return state
+
+    def __setstate__(self, state: dict) -> None:
+        self.__dict__.update(state)
+        self._last = threading.local()
 
     @classmethod
     def build(cls, seds: tuple[Curve, Curve], filt: Filter, rest: Filter,
               colour: tuple[str, str], colour_filters: tuple[Filter, Filter], z_max: float,
-              key: str, tolerance: float, clip_tolerance_mag: float = 0.1) -> "TemplateMix":
+              key: str, tolerance: float, clip_tolerance_mag: float = 0.1,
+              max_k_spread_mag: float = DEFAULT_MAX_K_SPREAD_MAG,
+              clip_tolerance_sigma: float = 2.0,
+              assumed_colour_error_mag: float = DEFAULT_ASSUMED_COLOUR_ERROR_MAG
+              ) -> "TemplateMix":
         # The band is often one of the colour's bands (r with g - r): tabulate each distinct
         # filter once.
         distinct: list[Filter] = []
@@ -373,32 +454,55 @@ class TemplateMix(Method):
             if not same:
                 distinct.append(f)
             columns.append(same[0] if same else len(distinct) - 1)
-        scales = []
-        for sed in seds:
-            rest_maggies = float(_shape_maggies(sed, rest, np.zeros(1))[0])
-            _check_flux(np.array([rest_maggies]), np.zeros(1), sed, rest, key)
-            scales.append(rest_maggies)
-        functions = []
-        for filt_x in distinct:
-            for sed, scale in zip(seds, scales):
-                def f(z, sed=sed, filt_x=filt_x, scale=scale):
-                    m = _shape_maggies(sed, filt_x, z)
-                    _check_flux(m, z, sed, filt_x, key)
-                    return m / scale
 
-                functions.append(f)
-        table = tabulate(functions, z_max, error=_maggies_error, tolerance=tolerance)
+        def build_table() -> Tabulated:
+            scales = []
+            for sed in seds:
+                rest_maggies = float(_shape_maggies(sed, rest, np.zeros(1))[0])
+                _check_flux(np.array([rest_maggies]), np.zeros(1), sed, rest, key)
+                scales.append(rest_maggies)
+            functions = []
+            for filt_x in distinct:
+                for sed, scale in zip(seds, scales):
+                    def f(z, sed=sed, filt_x=filt_x, scale=scale):
+                        m = _shape_maggies(sed, filt_x, z)
+                        _check_flux(m, z, sed, filt_x, key)
+                        return m / scale
+
+                    functions.append(f)
+            return tabulate(functions, z_max, error=_maggies_error, tolerance=tolerance)
+
+        parts = {"method": cls.kind, "seds": list(seds), "rest": rest, "filters": distinct,
+                 "z_max": z_max, "tolerance": tolerance}
+        table = cached_table(parts, build_table)
         return cls(colour=colour, table=table, columns=tuple(columns),
                    sed_paths=(seds[0].path, seds[1].path), z_max=z_max,
-                   clip_tolerance_mag=clip_tolerance_mag)
+                   clip_tolerance_mag=clip_tolerance_mag,
+                   max_k_spread_mag=max_k_spread_mag,
+                   clip_tolerance_sigma=clip_tolerance_sigma,
+                   assumed_colour_error_mag=assumed_colour_error_mag)
 
     def flag_suffixes(self):
         out = super().flag_suffixes()
         p, q = self.colour
         out[COLOUR_CLIPPED] = (
-            f"The colour {p} - {q} lies more than {self.clip_tolerance_mag:g} mag beyond the "
-            f"colours of both templates at this redshift: the K-correction is that of the "
-            f"nearer template.")
+            f"The colour {p} - {q} lies beyond both templates' colours at this redshift, by "
+            f"at most {self.clip_tolerance_mag:g} mag or {self.clip_tolerance_sigma:g} times "
+            f"its error: the K-correction (kept) is that of the nearer template.")
+        out[COLOUR_OUTSIDE] = (
+            f"The colour {p} - {q} lies beyond the colours of both templates at this "
+            f"redshift by more than {self.clip_tolerance_mag:g} mag and more than "
+            f"{self.clip_tolerance_sigma:g} times its error, so no mixture of them has it: "
+            f"null K-correction and absolute magnitude.")
+        out[COLOUR_DEGENERATE] = (
+            f"Both templates have the same colour {p} - {q} at this redshift (within "
+            f"{self.degenerate_mag:g} mag), so the colour cannot choose a mixture: null "
+            f"K-correction and absolute magnitude.")
+        out[COLOUR_INSENSITIVE] = (
+            f"At this redshift the K-corrections of the mixtures matching {p} - {q} plus and "
+            f"minus its error (or {self.assumed_colour_error_mag:g} mag) differ by more than "
+            f"{self.max_k_spread_mag:g} mag (the colour hardly depends on the mixture while "
+            f"K does), so the colour cannot fix K: null K-correction and absolute magnitude.")
         return out
 
     def describe(self) -> str:
@@ -406,78 +510,155 @@ class TemplateMix(Method):
         return (f"per-object mixture of templates {self.sed_paths[0]} and {self.sed_paths[1]} "
                 f"matching the colour {p} - {q}, by synthetic photometry (Hogg et al. 2002 "
                 f"eq. 9), fluxes tabulated at {self.table.grid.n} redshifts on 0 <= z <= "
-                f"{self.z_max:g}")
+                f"{self.z_max:g}; no K for colours more than {self.clip_tolerance_mag:g} mag "
+                f"beyond both templates' or where K over the colour's +-1 sigma spans more "
+                f"than {self.max_k_spread_mag:g} mag")
 
-    def weights(self, z: np.ndarray, colour: np.ndarray):
-        """Mixture weight w of template B per row, with the band's fluxes of both templates."""
+    def template_colours(self, z: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Synthetic colours m_p - m_q of templates A and B at each z (NaN outside the table)."""
+        sol = self.solve(z, np.zeros_like(z))
+        (a_p, b_p), (a_q, b_q) = sol.fluxes["p"], sol.fluxes["q"]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            c_a = -2.5 * np.log10(a_p / a_q)
+            c_b = -2.5 * np.log10(b_p / b_q)
+        c_a[~sol.inside] = np.nan
+        c_b[~sol.inside] = np.nan
+        return c_a, c_b
+
+    def solve(self, z: np.ndarray, colour: np.ndarray,
+              colour_err: np.ndarray | None = None) -> MixSolution:
+        """The mixture weight of every row and why it was or was not found (``colour_err``,
+        when given, widens the clipping tolerance of each row to ``clip_tolerance_sigma``
+        times it)."""
         idx, frac, inside = self.table.grid.locate(z)
         t = self.table
         r, p, q = self.columns
-        a_r, b_r = t.at(2 * r, idx, frac), t.at(2 * r + 1, idx, frac)
-        a_p, b_p = (a_r, b_r) if p == r else (t.at(2 * p, idx, frac), t.at(2 * p + 1, idx, frac))
-        a_q, b_q = (a_r, b_r) if q == r else (t.at(2 * q, idx, frac), t.at(2 * q + 1, idx, frac))
+        got: dict[int, tuple[np.ndarray, np.ndarray]] = {}
+        for u in (r, p, q):
+            if u not in got:
+                got[u] = (t.at(2 * u, idx, frac), t.at(2 * u + 1, idx, frac))
+        fluxes = {"r": got[r], "p": got[p], "q": got[q]}
+        (a_p, b_p), (a_q, b_q) = fluxes["p"], fluxes["q"]
         rho = np.exp((-0.4 * LN10) * colour)
-        a = a_p - rho * a_q
-        b = b_p - rho * b_q
+        missing = ~np.isfinite(colour)
         with np.errstate(invalid="ignore", divide="ignore"):
+            # Ratios F_p / F_q of the templates and of the object (no logarithm per row):
+            # the object lies between the templates when rho lies between their ratios.
+            ra, rb = a_p / a_q, b_p / b_q
+            lo, hi = np.minimum(ra, rb), np.maximum(ra, rb)
+            degenerate = inside & ~missing & ~(hi > lo * 10.0 ** (0.4 * self.degenerate_mag))
+            # A colour on a template's own (to the tables' accuracy) is that template.
+            slack = 10.0 ** (0.4 * self.on_template_mag)
+            free = (rho >= lo / slack) & (rho <= hi * slack) & ~degenerate
+            a = a_p - rho * a_q
+            b = b_p - rho * b_q
             w = a / (a - b)
-            # Templates of equal colour at this z leave w undetermined (0/0): take the middle;
-            # an infinite w (observed colour not theirs) is clipped below.
-            w[np.isnan(w) & np.isfinite(colour)] = 0.5
-            clipped = (w < -1e-9) | (w > 1.0 + 1e-9)
         np.clip(w, 0.0, 1.0, out=w)
-        if clipped.any():
-            # Distance, in magnitudes, from the nearer template's colour (clipped rows only).
-            rows = np.flatnonzero(clipped)
-            end = w[rows]
-            f_p = np.where(end > 0.5, b_p[rows], a_p[rows])
-            f_q = np.where(end > 0.5, b_q[rows], a_q[rows])
-            with np.errstate(invalid="ignore", divide="ignore"):
-                beyond = np.abs(colour[rows] + 2.5 * np.log10(f_p / f_q))
-            clipped[rows] = ~(beyond <= self.clip_tolerance_mag)
-        return w, clipped, inside, a_r, b_r
+        # Beyond the templates: the nearer one in colour (ratios compared in magnitudes).
+        beyond = inside & ~missing & ~free & ~degenerate
+        clipped = np.zeros_like(beyond)
+        outside = np.zeros_like(beyond)
+        if beyond.any():
+            rows = np.flatnonzero(beyond)
+            rr = rho[rows]
+            da = np.abs(np.log(rr / ra[rows]))
+            db = np.abs(np.log(rr / rb[rows]))
+            to_b = db < da
+            w[rows] = np.where(to_b, 1.0, 0.0)
+            gap = np.minimum(da, db) * (2.5 / LN10)
+            tol = np.full(rows.size, self.clip_tolerance_mag)
+            if colour_err is not None:
+                with np.errstate(invalid="ignore"):
+                    tol = np.fmax(tol, self.clip_tolerance_sigma * colour_err[rows])
+            near = gap <= tol
+            clipped[rows] = near
+            outside[rows] = ~near
+        w[~inside | missing | outside | degenerate] = np.nan
+        # dK/dc = (dK/dw) / (dc/dw) = (dF_R / F_R) / (dF_p / F_p - dF_q / F_q) at w.
+        (a_r, b_r) = fluxes["r"]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            d_r, d_p, d_q = b_r - a_r, b_p - a_p, b_q - a_q
+            sensitivity = (d_r / (a_r + w * d_r)) / (d_p / (a_p + w * d_p)
+                                                      - d_q / (a_q + w * d_q))
+            # K of the mixtures matching the colour -+ its error (weights clamped by colour)
+            sigma = np.full(z.shape, self.assumed_colour_error_mag)
+            if colour_err is not None:
+                sigma = np.where(np.isfinite(colour_err) & (colour_err >= 0), colour_err,
+                                 sigma)
+            shift = np.exp((0.4 * LN10) * sigma)
 
-    def evaluate(self, z, colour):
-        w, clipped, inside, a_r, b_r = self.weights(z, colour)
+            def k_at(rho_x):
+                a_x = a_p - rho_x * a_q
+                w_x = a_x / (a_x - (b_p - rho_x * b_q))
+                between = (rho_x >= lo) & (rho_x <= hi)
+                end = np.where(np.abs(np.log(rho_x / ra)) <= np.abs(np.log(rho_x / rb)), 0.0,
+                               1.0)
+                w_x = np.where(between, np.clip(w_x, 0.0, 1.0), end)
+                return -2.5 * np.log10(a_r + w_x * d_r)
+
+            spread = np.abs(k_at(rho * shift) - k_at(rho / shift))
+            insensitive = np.isfinite(w) & ~(spread <= self.max_k_spread_mag)
+        w[insensitive] = np.nan
+        clipped &= ~insensitive
+        return MixSolution(idx=idx, frac=frac, inside=inside, fluxes=fluxes, rho=rho, w=w,
+                           free=free & inside & ~missing & ~insensitive, clipped=clipped,
+                           outside=outside, degenerate=degenerate, missing=missing,
+                           insensitive=insensitive, sensitivity=sensitivity, spread=spread)
+
+    def _solution(self, z: np.ndarray, colour: np.ndarray,
+                  colour_err: np.ndarray | None = None) -> MixSolution:
+        """:meth:`solve`, reusing this thread's last solution for the very same arrays (the
+        annotator calls :meth:`evaluate` then :meth:`derivatives` on one batch)."""
+        last = getattr(self._last, "value", None)
+        if last is not None and last[0] is z and last[1] is colour and \
+                (colour_err is None or last[2] is colour_err):
+            return last[3]
+        sol = self.solve(z, colour, colour_err)
+        self._last.value = (z, colour, colour_err, sol)
+        return sol
+
+    def release(self) -> None:
+        self._last.value = None
+
+    def weights(self, z: np.ndarray, colour: np.ndarray):
+        """Mixture weight w of template B per row (NaN where refused), the rows flagged
+        ``colour_clipped``, the rows inside the table, and the band's fluxes of both
+        templates."""
+        sol = self._solution(z, colour)
+        a_r, b_r = sol.fluxes["r"]
+        return sol.w, sol.clipped, sol.inside, a_r, b_r
+
+    def evaluate(self, z, colour, colour_err=None):
+        sol = self._solution(z, colour, colour_err)
+        a_r, b_r = sol.fluxes["r"]
         # Both templates have unit rest-frame flux in Q, so the mixture's is 1 and
         # K = m_R(z) - m_Q(0) = -2.5 log10 of its observed maggies (which already carry the
         # 1 / (1 + z) of the redshifted spectrum, see synthetic.py).
-        b_r -= a_r
-        b_r *= w
-        b_r += a_r  # (1 - w) A_R + w B_R
         with np.errstate(invalid="ignore", divide="ignore"):
-            k = np.log10(b_r)
-        k *= -2.5
-        missing = ~np.isfinite(colour)
-        k[~inside | missing] = np.nan
-        return k, {OUTSIDE_Z: np.isfinite(z) & ~inside, COLOUR_MISSING: missing,
-                   COLOUR_CLIPPED: clipped & inside & ~missing}
-
+            k = -2.5 * np.log10(a_r + sol.w * (b_r - a_r))
+        k[~np.isfinite(k)] = np.nan
+        return k, {OUTSIDE_Z: np.isfinite(z) & ~sol.inside, COLOUR_MISSING: sol.missing,
+                   COLOUR_CLIPPED: sol.clipped, COLOUR_OUTSIDE: sol.outside,
+                   COLOUR_DEGENERATE: sol.degenerate, COLOUR_INSENSITIVE: sol.insensitive}
 
     def derivatives(self, z, colour):
         """dK/dz and dK/dc in closed form from the tabulated fluxes and their z-derivatives:
         with a = F_p^A - rho F_q^A, b = F_p^B - rho F_q^B, w = a / (a - b),
         dw = (a db - b da) / (a - b)^2, N = F_R^A + w (F_R^B - F_R^A), dK = -2.5 dN / (N ln 10);
-        a clipped w does not move (dw = 0)."""
-        idx, frac, _ = self.table.grid.locate(z)
+        a clipped w does not move (dw = 0). The weights come from :meth:`solve` (once)."""
+        sol = self._solution(z, colour)
         t = self.table
         r, p, q = self.columns
-
-        def pair(u):
-            return (t.at(2 * u, idx, frac), t.at(2 * u + 1, idx, frac),
-                    t.derivative(2 * u, idx, frac), t.derivative(2 * u + 1, idx, frac))
-
-        a_r, b_r, da_r, db_r = pair(r)
-        a_p, b_p, da_p, db_p = (a_r, b_r, da_r, db_r) if p == r else pair(p)
-        a_q, b_q, da_q, db_q = (a_r, b_r, da_r, db_r) if q == r else pair(q)
-        rho = np.exp((-0.4 * LN10) * colour)
-        a = a_p - rho * a_q
-        b = b_p - rho * b_q
+        idx, frac = sol.idx, sol.frac
+        d = {u: (t.derivative(2 * u, idx, frac), t.derivative(2 * u + 1, idx, frac))
+             for u in {r, p, q}}
+        (a_r, b_r), (a_p, b_p), (a_q, b_q) = sol.fluxes["r"], sol.fluxes["p"], sol.fluxes["q"]
+        (da_r, db_r), (da_p, db_p), (da_q, db_q) = d[r], d[p], d[q]
+        rho, w = sol.rho, sol.w
         with np.errstate(invalid="ignore", divide="ignore"):
-            w = a / (a - b)
-            free = (w >= 0.0) & (w <= 1.0)
-            inv = np.where(free, 1.0 / (a - b) ** 2, 0.0)
-            w = np.clip(w, 0.0, 1.0)
+            a = a_p - rho * a_q
+            b = b_p - rho * b_q
+            inv = np.where(sol.free, 1.0 / (a - b) ** 2, 0.0)
             drho = (-0.4 * LN10) * rho
             dw_dc = (a * (-drho * b_q) - b * (-drho * a_q)) * inv
             dw_dz = (a * (db_p - rho * db_q) - b * (da_p - rho * da_q)) * inv

@@ -265,3 +265,14 @@ def ucd_band_word(pivot_A: float | None) -> str | None:
         if lo <= nm < hi:
             return word
     return None
+
+
+def cached_table(parts: dict, build: Callable[[], Tabulated]) -> Tabulated:
+    """``build()``'s table, or the same table read from the on-disk cache (``cache.py``),
+    keyed by the content hash of ``parts`` (curves, redshift range, settings) and the code."""
+    from . import cache
+
+    def make(values, n, z_max, max_error):
+        return Tabulated(Grid(z_max, n), values, max_error=max_error)
+
+    return cache.cached_tabulation(parts, build, make)

@@ -173,3 +173,19 @@ def test_bad_band_tables(tmp_path, curves, bands, needle):
 def test_unknown_option(tmp_path, curves):
     msg = _error(tmp_path, _r(), {"tolerance": 1e-3})
     assert "[annotators.kcorrection].tolerance: unknown option" in msg
+
+
+@pytest.mark.parametrize("key, value, needle", [
+    ("max_kcorrection_spread_mag", 0, "expected > 0"),
+    ("max_kcorrection_spread_mag", "wide", "a magnitude difference"),
+    ("clip_tolerance_sigma", -1, "expected >= 0"),
+    ("assumed_colour_error_mag", -0.1, "expected >= 0"),
+])
+def test_bad_template_mix_refusal_settings(tmp_path, curves, key, value, needle):
+    # Common practice: the refusal thresholds of the mixture are checked like every key.
+    mix = {"method": "template_mix", "seds": ["seds/early.csv", "seds/young.csv"],
+           "colour": ["b", "r"], "z_max": 1.0, key: value}
+    bands = {"b": {"magnitude": "mag_b", "filter": "filters/blue.csv"},
+             "r": {"magnitude": "mag_r", "filter": "filters/red.csv", "kcorrection": mix}}
+    msg = _error(tmp_path, bands)
+    assert f"[bands.r].kcorrection.{key}" in msg and needle in msg

@@ -134,7 +134,8 @@ def test_template_mix_reproduces_a_mixed_object(tmp_path, curves):
         "b": _band("blue", "mag_b"),
         "r": _band("red", "mag_r", {"method": "template_mix",
                                     "seds": ["seds/early.csv", "seds/young.csv"],
-                                    "colour": ["b", "r"], "z_max": 1.2}),
+                                    "colour": ["b", "r"], "z_max": 1.2,
+                                    "max_kcorrection_spread_mag": 1e6}),
     }
     k = _method(configure(tmp_path, bands), "r")
     for wa, wb, z in ((0.3, 0.7, 0.25), (0.8, 0.2, 0.6), (0.05, 0.95, 1.1)):
@@ -145,22 +146,24 @@ def test_template_mix_reproduces_a_mixed_object(tmp_path, curves):
         ref = kcorrection_direct(obj, RED, RED, z, SUPPORT["red"], SUPPORT["red"])
         assert values[0] == pytest.approx(ref, abs=1e-3)
         assert not flags["colour_clipped"][0]
-    # K(0) = 0 whatever the colour; a colour redder than both templates is clipped to the
-    # redder (early) one and flagged.
-    values, flags = k.evaluate(np.array([0.0, 0.0, 0.4]), np.array([0.2, 1.0, 9.0]))
-    np.testing.assert_allclose(values[:2], 0.0, atol=1e-12)
-    assert flags["colour_clipped"][2]
+    # A colour far redder than both templates is refused (null K, colour_outside_range), not
+    # given the end member's K (issue 13).
+    values, flags = k.evaluate(np.array([0.0, 0.4]), np.array([9.0, 9.0]))
+    assert np.isnan(values).all()
+    assert flags["colour_outside_range"].tolist() == [True, True]
+    assert not flags["colour_clipped"].any()
     early_only = _method(configure(tmp_path, {"r": _band(
         "red", "mag_r", {"method": "template", "sed": "seds/early.csv", "z_max": 1.2})}), "r")
     k_early = early_only.evaluate(np.array([0.4]), None)[0][0]
-    assert values[2] == pytest.approx(k_early, abs=1e-4)
-    # Within clip_tolerance_mag (0.1) of the early template's colour: its K, not flagged;
-    # beyond it: flagged.
+    # Within clip_tolerance_mag (0.1) of the early template's colour: its K, kept but flagged
+    # colour_clipped; beyond it: null and colour_outside_range.
     c_early = (ab_magnitude_direct(early_sed, BLUE, SUPPORT["blue"], 0.4)
                - ab_magnitude_direct(early_sed, RED, SUPPORT["red"], 0.4))
-    values, flags = k.evaluate(np.full(3, 0.4), c_early + np.array([0.05, 0.09, 0.2]))
-    np.testing.assert_allclose(values, k_early, atol=1e-4)
-    assert flags["colour_clipped"].tolist() == [False, False, True]
+    values, flags = k.evaluate(np.full(4, 0.4), c_early + np.array([0.0, 0.05, 0.09, 0.2]))
+    np.testing.assert_allclose(values[:3], k_early, atol=1e-4)
+    assert np.isnan(values[3])
+    assert flags["colour_clipped"].tolist() == [False, True, True, False]
+    assert flags["colour_outside_range"].tolist() == [False, False, False, True]
 
 
 # ---------------------------------------------------------------------------- polynomial
@@ -233,7 +236,11 @@ def test_every_method_gives_zero_at_zero_redshift(tmp_path, curves):
     for b in instance.bands:
         if b.method is None:
             continue
-        values, _ = b.method.evaluate(np.zeros(3), colours)
+        c = colours
+        if b.method.kind == "template_mix":  # colours the two templates span at z = 0
+            c_a, c_b = b.method.template_colours(np.zeros(1))
+            c = np.linspace(c_a[0], c_b[0], 3)
+        values, _ = b.method.evaluate(np.zeros(3), c)
         np.testing.assert_allclose(values, 0.0, atol=1e-12, err_msg=b.name)
 
 
