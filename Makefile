@@ -4,7 +4,7 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 DEMO_OUT := demo_output
 
-.PHONY: demo test venv clean bench lint test-browser
+.PHONY: demo test venv clean bench lint mutate test-browser
 
 $(BIN)/activate:
 	rm -rf $(VENV)
@@ -34,6 +34,11 @@ test-browser: venv-test
 
 bench: venv-test
 	$(BIN)/python benchmarks/run_all.py
+
+# Deliberate bugs (tests/mutation/mutants.toml), one at a time in a scratch copy: every one
+# must make its tests fail.
+mutate: venv-test
+	$(BIN)/python tests/mutation/run.py
 
 clean:
 	rm -rf $(VENV) $(DEMO_OUT) build *.egg-info

@@ -123,7 +123,7 @@ def build_plan(job: Job, pm=None) -> Plan:
                 f"{sources[0].path} (differing: {', '.join(missing)})"
             )
     try:
-        cosmology = Cosmology.from_dict(job.cosmology)
+        cosmology = Cosmology.from_dict(job.cosmology).build()  # tables: a refusal is here
     except CosmologyError as exc:
         raise ConfigError(f"[cosmology]: {exc}") from exc
     estimates = [r.estimate_rows() for r in readers]

@@ -14,6 +14,7 @@ from pathlib import Path
 HERE = Path(__file__).resolve().parent
 SCRIPTS = [
     ("bench_cosmology.py", []),
+    ("bench_cosmology_accuracy.py", []),
     ("bench_pipeline.py", []),
     ("bench_kcorrection.py", []),
     ("bench_ktable_cache.py", []),

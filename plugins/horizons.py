@@ -7,12 +7,12 @@ import pyarrow as pa
 
 from annotator import ColumnSpec, hookimpl
 
-from ._redshift import CosmologicalAnnotator
+from ._redshift import CosmologicalAnnotator, usable_redshift
 
 
 class Horizons(CosmologicalAnnotator):
     name = "horizons"
-    version = "1.0"
+    version = "1.1"
     summary = "Reachability (inside our event horizon today), horizon-crossing age, " \
               "arrival age of a signal sent today."
     position = 40
@@ -28,6 +28,23 @@ class Horizons(CosmologicalAnnotator):
                    "Cosmic age at which a light signal sent from us today would reach the "
                    "object; null when unreachable."),
     )
+    flags = {
+        "horizon_crossing_beyond_tables": "The model has an event horizon but the object "
+                                          "crosses it later than the tabulated future reaches "
+                                          "(very small z with w close to -1/3): the crossing "
+                                          "age is null.",
+    }
+
+    def annotate(self, batch):
+        z = batch.derived("redshift", usable_redshift)
+        out = self.compute(z)
+        if self.cosmology.event_horizon_mpc < np.inf:
+            cross_null = np.isnan(out["horizon_crossing_age_gyr"])
+            if cross_null.any():
+                # rows inside the redshift tables (beyond them redshift_checks flags the row)
+                inside = np.isfinite(self.cosmology.comoving_distance_mpc(z))
+                batch.flag("horizon_crossing_beyond_tables", inside & cross_null)
+        return out
 
     def compute(self, z):
         reachable = self.cosmology.reachable(z)

@@ -1,7 +1,8 @@
 """Independent reference for the cosmology tests: E(z) written out from the raw
 parameters, and every integral by scipy.integrate.quad (adaptive Gauss-Kronrod) per
 value, with tolerances far tighter than the engine's.  Shares no code with the engine
-except the constants module (published standards)."""
+with the engine: its constants are its own (_reference_constants.py, from the published
+standards), not the engine's constants module."""
 
 from __future__ import annotations
 
@@ -11,7 +12,7 @@ import numpy as np
 from scipy.integrate import quad
 from scipy.optimize import brentq
 
-from annotator.cosmology import constants as K
+import _reference_constants as RC
 
 KOMATSU_A, KOMATSU_P = 0.3173, 1.83  # Komatsu et al. 2011, ApJS 192, 18, eq. 26
 QUAD = dict(epsabs=0.0, epsrel=1e-13, limit=400)
@@ -21,9 +22,9 @@ class Reference:
     def __init__(self, h0=70.0, omega_m=0.3, omega_de=None, omega_b=0.0, t_cmb=0.0,
                  n_eff=3.046, m_nu=(), w0=-1.0, wa=0.0, name=None):
         self.h0, self.om, self.w0, self.wa = h0, omega_m, w0, wa
-        h0_si = h0 * 1e3 / K.MPC_M
-        rho_c = 3 * h0_si**2 / (8 * math.pi * K.G_SI)
-        self.og = 4 * K.SIGMA_SB_SI / K.C_M_S**3 * t_cmb**4 / rho_c
+        h0_si = h0 * 1e3 / RC.MEGAPARSEC_M
+        rho_c = 3 * h0_si**2 / (8 * math.pi * RC.NEWTON_G_SI)
+        self.og = 4 * RC.STEFAN_BOLTZMANN_SI / RC.SPEED_OF_LIGHT_M_S**3 * t_cmb**4 / rho_c
         per = 7 / 8 * (4 / 11) ** (4 / 3) * self.og
         m_nu = list(m_nu)
         if not m_nu:
@@ -34,7 +35,7 @@ class Reference:
             w = n_eff / len(m_nu)
             massive = [m for m in m_nu if m > 0]
             self.orad = self.og + per * w * (len(m_nu) - len(massive))
-            t_nu = (4 / 11) ** (1 / 3) * t_cmb * K.K_B_EV_K
+            t_nu = (4 / 11) ** (1 / 3) * t_cmb * RC.BOLTZMANN_EV_PER_K
             self.nu = [m / t_nu for m in massive]  # y today
             self.nu_w = per * w
         self.onu0 = self._nu(1.0)
@@ -44,8 +45,8 @@ class Reference:
         else:
             self.ode = omega_de
             self.ok = 1 - omega_m - omega_de - self.orad - self.onu0
-        self.dh = K.C_KM_S / h0
-        self.th = K.MPC_KM / h0 / K.GYR_S
+        self.dh = RC.SPEED_OF_LIGHT_KM_S / h0
+        self.th = RC.MEGAPARSEC_KM / h0 / RC.GIGAYEAR_S
 
     def _nu(self, a):
         return self.nu_w * sum((1 + (KOMATSU_A * y * a) ** KOMATSU_P) ** (1 / KOMATSU_P)

@@ -1,8 +1,12 @@
 """The engine against astropy.cosmology, a general-purpose reference library
 (test-only dependency; the engine never imports it).
 
-Requirement: relative error <= 1e-6 for the model set of _cosmo_models.MODELS (flat, open,
-closed; with and without radiation and massive neutrinos; constant and evolving w).
+The promise is a relative error <= 1e-6 for the model set of _cosmo_models.MODELS (flat,
+open, closed; with and without radiation and massive neutrinos; constant and evolving w).
+The checks hold the engine to what is actually achieved where astropy itself is that good
+(1e-9; measured worst 1e-10), so that a wrong constant (c, Mpc, Gyr) of a part in 1e-8 or
+more fails: see TOL_BY_QUANTITY for the two quantities where astropy's own numerical error
+is larger.
 """
 
 from __future__ import annotations
@@ -15,7 +19,14 @@ from _cosmo_models import MODELS, built
 acosmo = pytest.importorskip("astropy.cosmology")
 u = pytest.importorskip("astropy.units")
 
-TOL = 1e-6
+TOL = 1e-9
+# Where astropy's own numerical error is the limit (measured on this model set, December 2026):
+# * age at emission: astropy integrates with scipy quad at its default absolute tolerance
+#   (1.49e-8 Hubble times), measured worst 5.1e-7 relative at z > 100; the engine matches
+#   epsrel=1e-13 quadrature to 1e-8 there (test_cosmology_quadrature.py).
+# * comoving volume of curved models: astropy uses Hogg 1999 eq. 29 in closed form, which
+#   cancels at small z (measured worst 6.5e-8 at z ~ 1e-4); flat models agree to 1e-10.
+TOL_BY_QUANTITY = {"age_at_emission_gyr": 1e-6, "comoving_volume_mpc3": 1e-7}
 _rng = np.random.default_rng(7)
 Z = np.concatenate([10 ** _rng.uniform(-4, 4, 30), _rng.uniform(1e-3, 1e4, 10)])
 
@@ -49,7 +60,7 @@ def test_against_astropy(name):
     c, _ = built(name)
     a = to_astropy(MODELS[name])
     assert c.omega_k == pytest.approx(a.Ok0, abs=1e-9)
-    assert c.age_today_gyr == pytest.approx(a.age(0).value, rel=TOL)
+    assert c.age_today_gyr == pytest.approx(a.age(0).value, rel=1e-12)  # measured 7e-14
     # E(z) = H(z)/H0, taken from astropy's H(z) so that its name for E does not appear here.
     e_ref = np.asarray(a.H(Z).value, dtype=float) / a.H0.value
     worst = {"expansion_rate": float(np.max(np.abs(c.expansion_rate(Z) / e_ref - 1.0)))}
@@ -69,7 +80,8 @@ def test_against_astropy(name):
             assert np.all(np.abs(got - ref)[tiny] <= 1e-9 * c.hubble_time_gyr)
             err = err[~tiny]
         worst[mine] = float(np.max(err))
-    assert max(worst.values()) <= TOL, worst
+    over = {q: e for q, e in worst.items() if e > TOL_BY_QUANTITY.get(q, TOL)}
+    assert not over, worst
 
 
 @pytest.mark.parametrize("mine,theirs", [("planck2018", "Planck18"), ("planck2015", "Planck15"),

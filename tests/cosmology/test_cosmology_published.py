@@ -1,4 +1,11 @@
-"""Published and commonly quoted values, each with its source."""
+"""Published and commonly quoted values, each with its source.
+
+Checks that compare the engine with itself (a quantity evaluated at the engine's own
+derived redshift) are named ``test_consistency_*`` and say so; each sits beside an outside
+reference for the same quantity (a published value here, or independent quadrature in
+test_cosmology_quadrature.py: test_horizon_and_hubble_sphere_redshifts,
+test_horizon_crossing_age, test_distances for the recession velocity).
+"""
 
 from __future__ import annotations
 
@@ -7,9 +14,12 @@ import math
 import numpy as np
 import pytest
 
+import _reference_constants as RC
+from _cosmo_reference import Reference
+
 from annotator.cosmology import Cosmology, constants as K, preset
 
-GLY_PER_MPC = K.MPC_IN_GLY
+GLY_PER_MPC = RC.MEGAPARSEC_M / RC.GIGA_LIGHT_YEAR_M  # IAU 2015 B2 parsec, IAU light-year
 
 
 def test_planck2018_age():
@@ -34,7 +44,15 @@ def test_davis_lineweaver_hubble_sphere(dl04):
     # Davis & Lineweaver 2004: the Hubble sphere is at z ~ 1.46
     d = dl04.derived()
     assert d["hubble_sphere_redshift"] == pytest.approx(1.46, abs=0.01)
-    assert float(dl04.recession_velocity_now_c(d["hubble_sphere_redshift"])) == pytest.approx(1.0)
+
+
+def test_consistency_velocity_at_the_engines_hubble_sphere(dl04):
+    # Consistency check (the engine with itself): at the engine's own Hubble-sphere
+    # redshift the engine's recession velocity now is c.  Outside reference for the same
+    # redshift: test_cosmology_quadrature.py::test_horizon_and_hubble_sphere_redshifts.
+    d = dl04.derived()
+    assert float(dl04.recession_velocity_now_c(d["hubble_sphere_redshift"])) == pytest.approx(
+        1.0, rel=1e-9)
 
 
 def test_davis_lineweaver_event_horizon(dl04):
@@ -42,9 +60,28 @@ def test_davis_lineweaver_event_horizon(dl04):
     d = dl04.derived()
     assert d["event_horizon_redshift"] == pytest.approx(1.8, abs=0.05)
     assert d["event_horizon_mpc"] * GLY_PER_MPC == pytest.approx(16.0, abs=0.3)
-    # an object at z_EH crosses our event horizon today
+
+
+def test_consistency_crossing_age_at_the_engines_horizon_redshift(dl04):
+    # Consistency check: an object at the engine's own z_EH crosses the engine's event
+    # horizon today.  Outside reference: the crossing age of the independent quadrature
+    # (root of R(x) = D_C) at the quadrature's own z_EH, below.
+    d = dl04.derived()
     assert float(dl04.horizon_crossing_age_gyr(d["event_horizon_redshift"])) == pytest.approx(
         dl04.age_today_gyr, rel=1e-9)
+
+
+def test_crossing_age_at_the_horizon_redshift_by_quadrature():
+    # Outside reference (Reference: E(z) written out, scipy quad, own constants): at the
+    # redshift where D_C equals the event horizon, the crossing age is the age today.
+    from scipy.optimize import brentq
+
+    params = dict(h0=70.0, omega_m=0.3)  # the textbook preset's parameters
+    r = Reference(**params)
+    r0 = r.remaining_eta(0.0)
+    z_eh = brentq(lambda z: r.chi(z) - r0, 0.5, 5.0, xtol=1e-14, rtol=1e-14)
+    c = Cosmology(**params)
+    assert float(c.horizon_crossing_age_gyr(z_eh)) == pytest.approx(r.age(0.0), rel=1e-8)
 
 
 @pytest.mark.parametrize("name", ["planck2018", "textbook"])
@@ -62,11 +99,27 @@ def test_common_practice_horizons(name):
     assert 0.04 <= frac <= 0.05
 
 
-def test_recession_velocity_3_mpc():
-    # common practice: with H0 = 68 km/s/Mpc an object 3 Mpc away recedes at 204 km/s
+def test_consistency_recession_velocity_3_mpc():
+    # Consistency check (Hubble's law v = H0 D restated, 204 = 3 x 68, through the engine's
+    # own inverse distance and its own c): with H0 = 68 km/s/Mpc an object 3 Mpc away
+    # recedes at 204 km/s.
     c = Cosmology(h0=68.0, omega_m=0.31, t_cmb=2.7255)
     z = c.redshift_at_comoving_distance(3.0)
     assert float(c.recession_velocity_now_c(z)) * K.C_KM_S == pytest.approx(204.0, rel=1e-9)
+
+
+def test_recession_velocity_3_mpc_outside_reference():
+    # Outside reference: the redshift at which D_C = 3 Mpc from independent quadrature
+    # (own constants: c of SI 2019, parsec of IAU 2015 B2); the engine's velocity now there,
+    # times c, is H0 x 3 Mpc = 204 km/s (Hubble's law for the proper distance now; Davis &
+    # Lineweaver 2004, eq. 1).
+    from scipy.optimize import brentq
+
+    params = dict(h0=68.0, omega_m=0.31, t_cmb=2.7255)
+    r = Reference(**params)
+    z = brentq(lambda zz: r.comoving_distance(zz) - 3.0, 1e-6, 1e-2, xtol=1e-16, rtol=1e-15)
+    v = float(Cosmology(**params).recession_velocity_now_c(z)) * RC.SPEED_OF_LIGHT_KM_S
+    assert v == pytest.approx(204.0, rel=1e-8)
 
 
 def test_constants():

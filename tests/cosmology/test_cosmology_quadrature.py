@@ -14,7 +14,7 @@ import math
 import numpy as np
 import pytest
 
-from annotator.cosmology import constants as K
+import _reference_constants as RC
 
 TOL = 1e-8
 
@@ -52,7 +52,7 @@ def test_distances(model):
     assert rel(c.transverse_comoving_distance_mpc(Z_RANDOM), dm) <= TOL
     assert rel(c.angular_diameter_distance_mpc(Z_RANDOM), dm / (1 + Z_RANDOM)) <= TOL
     assert rel(c.luminosity_distance_mpc(Z_RANDOM), dm * (1 + Z_RANDOM)) <= TOL
-    mu_ref = 5 * np.log10(dm * (1 + Z_RANDOM) / K.TEN_PC_IN_MPC)
+    mu_ref = 5 * np.log10(dm * (1 + Z_RANDOM) / RC.TEN_PARSEC_MPC)
     assert np.max(np.abs(c.distance_modulus_mag(Z_RANDOM) - mu_ref)) <= 5 / math.log(10) * TOL
     # recession velocities (in c): now D_C H0 / c, at emission D_C/(1+z) H(z) / c
     e = np.array([r.expansion_rate(z) for z in Z_RANDOM])
@@ -129,3 +129,22 @@ def test_inverses_round_trip(model):
     low = zs[zs < 100]
     lb = np.array([r.lookback(z) for z in low])
     assert rel(c.redshift_at_lookback_time(lb), low) <= TOL
+
+
+def test_horizon_and_hubble_sphere_redshifts(model):
+    # Outside references for the two derived redshifts: the Hubble sphere is where the
+    # recession velocity now is c, D_C(z) = D_H (Davis & Lineweaver 2004, PASA 21, 97,
+    # sec. 2); the event horizon today is where D_C(z) equals the remaining conformal time
+    # R0 (Rindler 1956).  Both solved by brentq on the reference's quadrature.
+    from scipy.optimize import brentq
+
+    c, r = model
+    d = c.derived()
+    z_hs = brentq(lambda z: r.chi(z) - 1.0, 1e-6, 1e4, xtol=1e-14, rtol=1e-14)
+    assert d["hubble_sphere_redshift"] == pytest.approx(z_hs, rel=TOL)
+    if math.isfinite(c.event_horizon_mpc):
+        r0 = r.remaining_eta(0.0)
+        z_eh = brentq(lambda z: r.chi(z) - r0, 1e-6, 1e4, xtol=1e-14, rtol=1e-14)
+        assert d["event_horizon_redshift"] == pytest.approx(z_eh, rel=TOL)
+    else:
+        assert d["event_horizon_redshift"] is None

@@ -71,10 +71,15 @@ def test_power_law_from_colour_recovers_the_slope(tmp_path, curves):
 
 
 # ------------------------------------------------------------------------------ template
+# Template K-corrections against Hogg et al. (2002) eq. 8 by quad: the promise is 1e-4 mag
+# (the default tolerance_mag); measured worst 4.9e-6 mag on these SEDs and filters (Dec
+# 2026).  Held to 2e-5 mag (four times the measured worst, for differences between
+# platforms' quadrature), so an error a fifth of the promise is seen.
+K_TOL_MAG = 2e-5
 
 def test_template_against_direct_integration_at_random_redshifts(tmp_path, curves):
     # Hogg et al. (2002) eq. 8, integrated in frequency with quad on the analytic SED and
-    # filter, at random z: the tabulated and interpolated K agrees within 1e-3 mag.
+    # filter, at random z: the tabulated and interpolated K agrees within K_TOL_MAG.
     bands = {"r": _band("red", "mag_r", {"method": "template", "sed": "seds/early.csv",
                                          "z_max": 2.0})}
     k = _method(configure(tmp_path, bands), "r")
@@ -83,7 +88,7 @@ def test_template_against_direct_integration_at_random_redshifts(tmp_path, curve
     values, _ = k.evaluate(z, None)
     for zi, ki in zip(z, values):
         ref = kcorrection_direct(early_sed, RED, RED, zi, SUPPORT["red"], SUPPORT["red"])
-        assert ki == pytest.approx(ref, abs=1e-3)
+        assert ki == pytest.approx(ref, abs=K_TOL_MAG)
     assert k.evaluate(np.array([0.0]), None)[0][0] == pytest.approx(0.0, abs=1e-12)
     assert k.table.max_error <= 1e-4
 
@@ -99,10 +104,10 @@ def test_template_with_a_different_rest_frame_band(tmp_path, curves):
     values, _ = k.evaluate(z, None)
     for zi, ki in zip(z, values):
         ref = kcorrection_direct(young_sed, DEEP, BLUE, zi, SUPPORT["deep"], SUPPORT["blue"])
-        assert ki == pytest.approx(ref, abs=1e-3)
+        assert ki == pytest.approx(ref, abs=K_TOL_MAG)
     colour = (ab_magnitude_direct(young_sed, DEEP, SUPPORT["deep"])
               - ab_magnitude_direct(young_sed, BLUE, SUPPORT["blue"]))
-    assert values[0] == pytest.approx(colour, abs=1e-3)
+    assert values[0] == pytest.approx(colour, abs=K_TOL_MAG)
 
 
 def test_template_flags_and_nulls_rows_outside_its_redshift_range(tmp_path, curves):
@@ -129,7 +134,7 @@ def test_default_redshift_range_is_what_the_sed_covers(tmp_path, curves):
 def test_template_mix_reproduces_a_mixed_object(tmp_path, curves):
     # An object whose SED is 0.3 early + 0.7 young (in f_lambda, any scale): its observed
     # colour b - r at z by quad (Hogg et al. 2002 eq. 2); the method must find that mixture
-    # and give its K by eq. 8 (quad) within 1e-3 mag.
+    # and give its K by eq. 8 (quad) within K_TOL_MAG.
     bands = {
         "b": _band("blue", "mag_b"),
         "r": _band("red", "mag_r", {"method": "template_mix",
@@ -144,7 +149,7 @@ def test_template_mix_reproduces_a_mixed_object(tmp_path, curves):
                   - ab_magnitude_direct(obj, RED, SUPPORT["red"], z))
         values, flags = k.evaluate(np.array([z]), np.array([colour]))
         ref = kcorrection_direct(obj, RED, RED, z, SUPPORT["red"], SUPPORT["red"])
-        assert values[0] == pytest.approx(ref, abs=1e-3)
+        assert values[0] == pytest.approx(ref, abs=K_TOL_MAG)
         assert not flags["colour_clipped"][0]
     # A colour far redder than both templates is refused (null K, colour_outside_range), not
     # given the end member's K (issue 13).
@@ -259,9 +264,11 @@ def test_template_derivative_matches_finite_differences_of_direct_k(tmp_path, cu
         assert dkdz[0] == pytest.approx(ref, rel=0.02)
 
 
-def test_template_mix_closed_form_derivatives_match_finite_differences(tmp_path, curves):
-    # The error column uses dK/dz and dK/dc of the mixture in closed form; compare with
-    # central differences of K itself (common practice), where the colour is not clipped.
+def test_consistency_template_mix_derivatives_match_finite_differences(tmp_path, curves):
+    # Consistency check: the error column uses dK/dz and dK/dc of the mixture in closed
+    # form; compare with central differences of the same method's K, where the colour is
+    # not clipped.  (K itself is checked against Hogg et al. 2002 eq. 8 by quad in
+    # test_template_mix_reproduces_a_mixed_object.)
     from annotator_plugins.kcorrection.methods import Method
 
     bands = {

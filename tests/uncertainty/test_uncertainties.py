@@ -1,9 +1,11 @@
 """Propagated errors and the probability of being reachable.
 
 Outside references: closed forms of the Einstein-de Sitter model (Hogg 1999, astro-ph/9905116,
-eqs. 14-16, 21, 28-30 with E(z) = (1+z)^(3/2)); central finite differences of the cosmology's
-own functions (common practice); scipy.stats.norm and scipy.stats.truncnorm; the split-normal
+eqs. 14-16, 21, 28-30 with E(z) = (1+z)^(3/2)); scipy.stats.norm and scipy.stats.truncnorm; the split-normal
 density (Wallis 2014, Statist. Sci. 29, 106, eq. 1) integrated numerically with scipy.
+Consistency check (named so): the errors against central finite differences of the
+cosmology's own functions (for curved models and Planck 2018, where no closed form exists;
+the engine's functions themselves are checked against quadrature in tests/cosmology).
 """
 
 from __future__ import annotations
@@ -81,7 +83,9 @@ def test_einstein_de_sitter_closed_forms(tmp_path):
     # closed
     Cosmology(h0=65.0, omega_m=0.4, omega_de=0.75, t_cmb=0.0),
 ], ids=["planck2018", "open", "closed"])
-def test_errors_match_finite_differences_of_the_cosmology(tmp_path, cosmo):
+def test_consistency_errors_match_finite_differences_of_the_cosmology(tmp_path, cosmo):
+    # Consistency check: derivatives compared with finite differences of the same engine
+    # (outside reference for the method: test_einstein_de_sitter_closed_forms).
     z = np.array([0.003, 0.05, 0.3, 0.9, 1.8, 3.5, 7.0])
     sigma = np.full_like(z, 0.01)
     table = pa.table({"z": z, "z_err": sigma})
