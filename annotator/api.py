@@ -58,6 +58,14 @@ class Annotator:
       ``column`` instead (a CMB-frame redshift redefines ``"redshift"``).
     * ``flags``: ``{reason: description}`` of the flags it may raise.
     * ``column_map``: ``{logical: catalogue column}`` it resolved itself (e.g. per-band magnitudes).
+    * ``replaces``: names of columns in ``provides`` that take the place of another
+      annotator's column of the same name (a redshift posterior's ``reachable_probability``
+      replaces the Gaussian one). The other annotator still runs, but its values of that
+      column are dropped; the manifest records, for that annotator, which column was replaced
+      and by whom. Two annotators that both claim to replace a column are refused.
+    * ``settings``: a small JSON-serialisable dict of what this job configured (a method, a
+      grid), recorded in the manifest beside the annotator so readers of the output (the
+      report) need not re-read the job's files. Default: empty (nothing recorded).
     """
 
     name: ClassVar[str] = ""
@@ -76,6 +84,8 @@ class Annotator:
     redefines: Mapping[str, str] = {}
     flags: Mapping[str, str] = {}
     column_map: Mapping[str, str] = {}
+    replaces: tuple[str, ...] = ()
+    settings: Mapping[str, Any] = {}
 
     @classmethod
     def configure(cls, setup: "Setup") -> "Annotator | None":

@@ -45,7 +45,7 @@ class Pipeline:
 
     @classmethod
     def from_plan(cls, plan, schema_metadata: dict | None = None) -> "Pipeline":
-        steps = [PipelineStep(s.name, s.annotator, dict(s.resolve), list(s.annotator.provides))
+        steps = [PipelineStep(s.name, s.annotator, dict(s.resolve), list(s.columns))
                  for s in plan.steps]
         return cls(steps, plan.output_schema, [r for r, _, _ in plan.flag_reasons],
                    schema_metadata, sentinels=getattr(plan.job, "sentinels", None))

@@ -7,6 +7,8 @@ The plan is what ``--dry-run`` prints and what every engine executes.
 
 from __future__ import annotations
 
+import os
+
 from dataclasses import dataclass, field
 
 import pyarrow as pa
@@ -31,6 +33,12 @@ class Step:
     annotator: Annotator
     registered: RegisteredAnnotator
     resolve: dict[str, tuple[str, str]]
+    replaced: dict[str, str] = field(default_factory=dict)  # column -> annotator replacing it
+
+    @property
+    def columns(self) -> list[ColumnSpec]:
+        """The columns this step writes: its ``provides`` minus those another one replaces."""
+        return [c for c in self.annotator.provides if c.name not in self.replaced]
 
     @property
     def name(self) -> str:
@@ -68,7 +76,9 @@ class Plan:
                 "plugin": s.registered.plugin,
                 "distribution": s.registered.distribution,
                 "inputs": {k: v[1] for k, v in s.resolve.items()},
-                "columns": [c.name for c in s.annotator.provides],
+                "columns": [c.name for c in s.columns],
+                **({"columns_replaced": dict(s.replaced)} if s.replaced else {}),
+                **({"settings": dict(s.annotator.settings)} if s.annotator.settings else {}),
             }
             for s in self.steps
         ]
@@ -88,6 +98,35 @@ def _hints(registered: dict[str, RegisteredAnnotator]) -> dict[str, list[str]]:
 
 def _position(reg: RegisteredAnnotator) -> tuple:
     return (getattr(reg.cls, "position", 100), reg.cls.name)
+
+
+def _check_one_shape(readers) -> None:
+    """Every input must hold the same columns. When they do not (a folder that also holds
+    other tables, e.g. filter curves), say which files hold which columns, in one line."""
+    shapes: dict[frozenset, list] = {}
+    for reader in readers:
+        shapes.setdefault(frozenset(reader.schema.names), []).append(reader)
+    if len(shapes) == 1:
+        return
+    paths = [str(r.source.path) for r in readers]
+    base = os.path.commonpath(paths) if len(paths) > 1 else ""
+    base = base if base and os.path.isdir(base) else os.path.dirname(base)
+
+    def name(reader) -> str:
+        return os.path.relpath(reader.source.path, base) if base else str(reader.source.path)
+
+    groups = sorted(shapes.values(), key=lambda g: (-len(g[0].schema.names), name(g[0])))
+    parts = []
+    for group in groups:
+        cols = group[0].schema.names
+        shown = ", ".join(cols[:4]) + (f", … ({len(cols)} columns)" if len(cols) > 4 else "")
+        files = ", ".join(name(r) for r in group[:3]) + (f" and {len(group) - 3} more"
+                                                          if len(group) > 3 else "")
+        parts.append(f"{files} [{shown}]")
+    where = f"under {base}: " if base else ""
+    raise InputError(f"inputs hold tables of {len(groups)} different shapes; a run reads one "
+                     f"kind of catalogue ({where}{'; '.join(parts)}): name the catalogue files, "
+                     f"or keep other tables out of the input folder")
 
 
 def build_plan(job: Job, pm=None) -> Plan:
@@ -115,13 +154,7 @@ def build_plan(job: Job, pm=None) -> Plan:
     sources = expand_inputs(job.inputs, job.input_format)
     readers = [open_reader(s, **job.reader_options()) for s in sources]
     schema = readers[0].schema
-    for reader in readers[1:]:
-        if set(reader.schema.names) != set(schema.names):
-            missing = sorted(set(schema.names) ^ set(reader.schema.names))
-            raise InputError(
-                f"input {reader.source.path}: its columns differ from those of "
-                f"{sources[0].path} (differing: {', '.join(missing)})"
-            )
+    _check_one_shape(readers)
     try:
         cosmology = Cosmology.from_dict(job.cosmology).build()  # tables: a refusal is here
     except CosmologyError as exc:
@@ -164,10 +197,20 @@ def build_plan(job: Job, pm=None) -> Plan:
 
     # -- who provides what -------------------------------------------------------------
     providers: dict[str, int] = {}
+    replaced: dict[int, dict[str, str]] = {}
     for i, (inst, reg) in enumerate(configured):
         for col in inst.provides:
             if col.name in providers:
-                other = configured[providers[col.name]][1]
+                j = providers[col.name]
+                other_inst, other = configured[j]
+                mine = col.name in inst.replaces
+                theirs = col.name in other_inst.replaces
+                if mine != theirs:
+                    # one replaces the other's column: the replacer provides it
+                    loser, winner = (j, i) if mine else (i, j)
+                    replaced.setdefault(loser, {})[col.name] = configured[winner][1].cls.name
+                    providers[col.name] = winner
+                    continue
                 raise PlanError(
                     f"column {col.name!r} is added by two annotators: {other.cls.name!r} "
                     f"({other.cls.origin()}) and {reg.cls.name!r} ({reg.cls.origin()}); "
@@ -340,8 +383,9 @@ def build_plan(job: Job, pm=None) -> Plan:
         done.add(i)
         remaining.remove(i)
 
-    steps = [Step(configured[i][0], configured[i][1], resolves[i]) for i in order]
-    added = [col for s in steps for col in s.annotator.provides]
+    steps = [Step(configured[i][0], configured[i][1], resolves[i], replaced.get(i, {}))
+             for i in order]
+    added = [col for s in steps for col in s.columns]
     out_fields = list(schema) + [pa.field(c.name, c.type) for c in added] + \
         [pa.field(FLAGS_COLUMN.name, FLAGS_COLUMN.type)]
     flag_reasons: list[tuple[str, str, str]] = []
@@ -391,9 +435,11 @@ def describe_plan(plan: Plan) -> str:
     name_width = max((len(c.name) for c in plan.added_columns), default=0)
     for s in plan.steps:
         lines.append(f"  {s.name} {s.annotator.version}  [{s.registered.distribution}]")
-        for col in s.annotator.provides:
+        for col in s.columns:
             lines.append(f"      + {col.name:<{name_width}} {str(col.type):<7} "
                          f"{col.unit or '-':<4} {col.ucd or ''}")
+        for col, by in s.replaced.items():
+            lines.append(f"      ({col}: replaced by {by})")
     for name, why in plan.skipped:
         lines.append(f"  ({name}: {why})")
     lines.append(f"      + {FLAGS_COLUMN.name}")

@@ -21,8 +21,10 @@ SCRIPTS = [
     ("bench_recovery.py", []),
     ("bench_luminosity_function.py", []),
     ("bench_uncertainty.py", []),
+    ("bench_redshift_pdf.py", []),
     ("bench_sql.py", []),
     ("bench_dask.py", []),
+    ("bench_report.py", []),
     ("bench_csv.py", []),
     ("bench_service.py", []),
 ]

@@ -28,15 +28,17 @@ redshifts, a handful of nearby blueshifted galaxies (negative z) and, in CSV out
 of malformed lines.  The selection is made on the true amber magnitude; the noise comes after.
 
 Module use: :func:`generate` (whole files, chunked, bounded memory), :class:`SurveyModel`
-(the tabulated model and :meth:`SurveyModel.draw_galaxies`).  CLI::
+(the tabulated model and :meth:`SurveyModel.draw_galaxies`), :func:`draw_photoz_pdfs` and
+:func:`pdf_grid` (the photo-z posteriors).  CLI::
 
     python sample_catalogues/generate.py --rows N --out FILE [--format parquet|csv|csv.gz]
-        [--seed S] [--cosmology PRESET] [--first-id ID] [--malformed K] [--truth]
+        [--seed S] [--cosmology PRESET] [--first-id ID] [--malformed K] [--truth] [--no-pdfs]
 
 ``--truth`` adds, in the same rows after the observed columns, ``true_z``, ``true_sed``,
 ``true_distance_modulus_mag``, ``true_absolute_magnitude_<band>_mag`` (rest-frame, AB) and
 ``true_mag_<band>`` (noiseless apparent): see :func:`truth_columns`. Malformed CSV lines stay
-malformed, with the truth after them.
+malformed, with the truth after them. ``--no-pdfs`` leaves out the photo-z PDFs
+(:func:`draw_photoz_pdfs`); every other column is the same with or without them.
 """
 
 from __future__ import annotations
@@ -115,6 +117,25 @@ LOCAL_FRACTION = 2.5e-4  # nearby blueshifted galaxies
 LOCAL_MIN_ROWS = 3
 LOCAL_TYPE_FRACTIONS = (0.15, 0.35, 0.5)  # early, intermediate, starforming: mostly dwarfs
 
+# -- photometric-redshift posteriors (invented; their own random stream) ---------------------
+# Every object with a redshift gets a gridded photo-z PDF on one shared grid, uniform in
+# ln(1 + z) (step 0.01, 0 <= z <= 4.0: the photo-z width grows like 1 + z), written to
+# pdf_grid.csv. Invented model: a Gaussian of width PHOT_Z_ERROR (1 + z) x U(0.7, 1.4) at the
+# photo-z (the catalogue redshift of photometric objects, a fresh draw for spectroscopic ones);
+# PDF_BIMODAL_FRACTION of them get a secondary peak (weight U(0.10, 0.45), 1.3 x wider) at a
+# confused redshift, and photometric outliers get one at their true redshift. Densities are
+# scaled to a peak of 1 and rounded to PDF_DECIMALS (values below half the last digit are 0),
+# which keeps the committed sample small.
+PDF_LN_STEP = 0.01
+PDF_NODES = 162
+PDF_BIMODAL_FRACTION = 0.12
+PDF_SECONDARY_WEIGHT = (0.10, 0.45)
+PDF_WIDTH_SCATTER = (0.7, 1.4)
+PDF_DECIMALS = 3
+PDF_STREAM = 7  # spawn-key tag of the posterior stream (the catalogue's streams are untouched)
+PDF_COLUMN = "photoz_pdf"
+PDF_GRID_FILE = "pdf_grid.csv"
+
 
 @dataclass(frozen=True)
 class GalaxyType:
@@ -155,10 +176,11 @@ DELTA_MAG_STEP = 0.002
 LN_FRACTION_MIN, LF_INVERSE_POINTS = -40.0, 1 << 17
 
 COLUMN_ORDER = (["object_id", "ra", "dec", "z", "z_err", "z_type"]
-                + [c for b in BANDS for c in (f"mag_{b}", f"magerr_{b}")] + ["sed_type"])
+                + [c for b in BANDS for c in (f"mag_{b}", f"magerr_{b}")]
+                + ["sed_type", PDF_COLUMN])
 
 
-def schema() -> pa.Schema:
+def schema(pdfs: bool = True) -> pa.Schema:
     """Arrow schema of a generated catalogue (units in the field metadata)."""
     fields = [
         pa.field("object_id", pa.int64(), False, {"unit": "", "description": "object id"}),
@@ -176,6 +198,9 @@ def schema() -> pa.Schema:
                                {"unit": "mag", "description": f"error of mag_{band}"}))
     fields.append(pa.field("sed_type", pa.string(), False,
                            {"unit": "", "description": "SED template the object was drawn from"}))
+    if pdfs:
+        fields.append(pa.field(PDF_COLUMN, pa.list_(pa.float32()), True, {
+            "unit": "", "description": "photo-z PDF on the grid of pdf_grid.csv (peak 1)"}))
     return pa.schema(fields)
 
 
@@ -491,13 +516,76 @@ def _round_float32(values: np.ndarray, decimals: int) -> pa.Array:
                     from_pandas=True)
 
 
+def pdf_grid() -> np.ndarray:
+    """The shared redshift grid of the photo-z PDFs: z_k = exp(k PDF_LN_STEP) - 1."""
+    return np.expm1(PDF_LN_STEP * np.arange(PDF_NODES))
+
+
+def write_pdf_grid(path: str | Path) -> None:
+    """Write the grid as a one-column CSV (what the demo job's grid_file reads)."""
+    Path(path).write_text("z\n" + "".join(f"{z:.10f}\n" for z in pdf_grid()))
+
+
+def pdf_stream(seed: int, chunk_index: int) -> np.random.Generator:
+    """The posteriors' own random stream for a chunk: drawing them never shifts any other
+    column's random numbers."""
+    return np.random.default_rng(np.random.SeedSequence(
+        seed, spawn_key=(chunk_index + 1, PDF_STREAM)))
+
+
+def draw_photoz_pdfs(rng: np.random.Generator, z_true: np.ndarray, z: np.ndarray,
+                     photometric: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Gridded photo-z PDFs (rows x PDF_NODES, float32, peak 1) and which rows have one."""
+    n = z_true.size
+    grid = pdf_grid()
+    has = np.isfinite(z)
+    width_true = PHOT_Z_ERROR * (1.0 + np.clip(z_true, 0.0, None))
+    fresh = np.abs(np.clip(z_true, 0.0, None) + width_true * rng.standard_normal(n))
+    centre = np.where(photometric, z, fresh)
+    centre = np.where(has, np.clip(centre, 0.0, grid[-1]), 1.0)
+    sigma = PHOT_Z_ERROR * (1.0 + centre) * rng.uniform(*PDF_WIDTH_SCATTER, n)
+    bimodal = rng.random(n) < PDF_BIMODAL_FRACTION
+    weight = rng.uniform(*PDF_SECONDARY_WEIGHT, n)
+    # invented confusion: a low-z solution gains a high-z twin and vice versa
+    second = np.where(centre < 1.2, centre + rng.uniform(0.8, 2.0, n),
+                      centre * rng.uniform(0.2, 0.5, n))
+    outlier = photometric & has & (np.abs(z - z_true) > 5.0 * width_true)
+    second = np.where(outlier, np.clip(z_true, 0.0, None), second)
+    weight = np.where(outlier, rng.uniform(0.2, 0.45, n), weight)
+    bimodal |= outlier
+    weight = np.where(bimodal, weight, 0.0)
+    second = np.clip(second, 0.0, grid[-1])
+    s2 = 1.3 * sigma
+    dens = (1.0 - weight)[:, None] / sigma[:, None] * np.exp(
+        -0.5 * ((grid[None, :] - centre[:, None]) / sigma[:, None]) ** 2)
+    dens += weight[:, None] / s2[:, None] * np.exp(
+        -0.5 * ((grid[None, :] - second[:, None]) / s2[:, None]) ** 2)
+    dens /= dens.max(axis=1, keepdims=True)
+    return np.round(dens, PDF_DECIMALS).astype(np.float32), has
+
+
+def _pdf_column(dens: np.ndarray, has: np.ndarray) -> pa.Array:
+    n, g = dens.shape
+    offsets = pa.array(np.arange(0, n * g + 1, g, dtype=np.int32))
+    return pa.ListArray.from_arrays(offsets, pa.array(dens.ravel()),
+                                    mask=pa.array(~has)).cast(pa.list_(pa.float32()))
+
+
+def pdf_as_text(column: pa.Array, delimiter: str = ";") -> pa.Array:
+    """A list<float> column as delimited text (a CSV field; an empty field when null)."""
+    text = pc.binary_join(pc.cast(column, pa.list_(pa.string())), delimiter)
+    return pc.fill_null(text, "")
+
+
 def make_chunk(model: SurveyModel, seed: int, chunk_index: int, first_row: int, n: int,
-               local_rows: np.ndarray, first_id: int, truth: bool = False) -> pa.Table:
+               local_rows: np.ndarray, first_id: int, truth: bool = False,
+               pdfs: bool = True) -> pa.Table:
     """Rows ``first_row .. first_row + n`` of the catalogue of ``seed`` (chunk ``chunk_index``
     has its own random stream, so chunks can be made in any order). With ``truth``, the
     :func:`truth_columns` follow the observed ones (they draw no random numbers, so the
     observed columns are the same with or without them)."""
-    table, gal = _observed_chunk(model, seed, chunk_index, first_row, n, local_rows, first_id)
+    table, gal = _observed_chunk(model, seed, chunk_index, first_row, n, local_rows, first_id,
+                                 pdfs)
     if truth:
         for name, column in truth_columns(model, gal).items():
             table = table.append_column(truth_field(name), column)
@@ -505,7 +593,8 @@ def make_chunk(model: SurveyModel, seed: int, chunk_index: int, first_row: int, 
 
 
 def _observed_chunk(model: SurveyModel, seed: int, chunk_index: int, first_row: int, n: int,
-                    local_rows: np.ndarray, first_id: int) -> tuple[pa.Table, dict]:
+                    local_rows: np.ndarray, first_id: int, pdfs: bool = True
+                    ) -> tuple[pa.Table, dict]:
     rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(chunk_index + 1,)))
     gal = model.draw_galaxies(rng, n)
     local = local_rows[(local_rows >= first_row) & (local_rows < first_row + n)] - first_row
@@ -544,7 +633,11 @@ def _observed_chunk(model: SurveyModel, seed: int, chunk_index: int, first_row: 
         columns[f"mag_{band}"] = _round_float32(mag[:, b], 4)
         columns[f"magerr_{band}"] = _round_float32(err[:, b], 4)
     columns["sed_type"] = _labels([t.name for t in model.types], gal["type_index"])
-    return pa.Table.from_pydict(columns, schema=schema()), gal
+    if pdfs:
+        dens, has = draw_photoz_pdfs(pdf_stream(seed, chunk_index), gal["z"],
+                                     np.round(z, 6), (z_type_code == 1))
+        columns[PDF_COLUMN] = _pdf_column(dens, has)
+    return pa.Table.from_pydict(columns, schema=schema(pdfs)), gal
 
 
 # -- the truth beside the observations ---------------------------------------------------------
@@ -643,12 +736,13 @@ def _format_of(path: Path, fmt: str | None) -> str:
 def generate(rows: int, out: str | Path, *, fmt: str | None = None, seed: int = DEFAULT_SEED,
              cosmology: str = DEFAULT_COSMOLOGY, first_id: int = 1,
              malformed: int = DEFAULT_MALFORMED_LINES, model: SurveyModel | None = None,
-             truth: bool = False) -> dict:
+             truth: bool = False, pdfs: bool = True) -> dict:
     """Write a catalogue of ``rows`` rows to ``out`` (atomically: temporary name, then rename)
     and return a summary (rows, timings, the malformed lines written, counts by kind).
 
     ``truth``: also write the ``true_*`` columns of :func:`truth_columns` after the observed
-    ones, in the same rows (the observed columns are identical either way)."""
+    ones, in the same rows (the observed columns are identical either way). ``pdfs=False``
+    leaves out the photo-z PDF column (every other column is unchanged)."""
     if not isinstance(rows, int) or rows < 1:
         raise ValueError(f"--rows: expected a positive integer, got {rows!r}")
     out = Path(out)
@@ -674,7 +768,7 @@ def generate(rows: int, out: str | Path, *, fmt: str | None = None, seed: int = 
     counts = {"spec": 0, "phot": 0, "none": 0, "negative_z": 0}
     try:
         if kind == "parquet":
-            sch = schema()
+            sch = schema(pdfs)
             if truth:
                 for name in truth_column_names():
                     sch = sch.append(truth_field(name))
@@ -684,7 +778,8 @@ def generate(rows: int, out: str | Path, *, fmt: str | None = None, seed: int = 
             dictionary = ["z_type", "sed_type"] + [f"magerr_{b}" for b in BANDS]
             with pq.ParquetWriter(tmp, sch, compression="zstd",
                                   use_dictionary=dictionary) as writer:
-                for table in _chunks(model, seed, rows, local_rows, first_id, counts, truth):
+                for table in _chunks(model, seed, rows, local_rows, first_id, counts, truth,
+                                     pdfs):
                     writer.write_table(table.replace_schema_metadata(sch.metadata))
         else:
             raw = open(tmp, "wb")
@@ -692,9 +787,15 @@ def generate(rows: int, out: str | Path, *, fmt: str | None = None, seed: int = 
                                  mtime=0) if kind == "csv.gz" else raw
             try:
                 first_row = 0
-                header = COLUMN_ORDER + (truth_column_names() if truth else [])
+                header = [c for c in COLUMN_ORDER if pdfs or c != PDF_COLUMN] + \
+                    (truth_column_names() if truth else [])
                 sink.write((",".join(header) + "\n").encode())
-                for table in _chunks(model, seed, rows, local_rows, first_id, counts, truth):
+                for table in _chunks(model, seed, rows, local_rows, first_id, counts, truth,
+                                     pdfs):
+                    if pdfs:  # CSV: the PDF as one field of ';'-separated values
+                        i = table.column_names.index(PDF_COLUMN)
+                        table = table.set_column(i, PDF_COLUMN,
+                                                 pdf_as_text(table.column(PDF_COLUMN)))
                     buf = io.BytesIO()
                     pacsv.write_csv(table, buf, pacsv.WriteOptions(
                         include_header=False, quoting_style="none"))
@@ -725,10 +826,10 @@ def generate(rows: int, out: str | Path, *, fmt: str | None = None, seed: int = 
     }
 
 
-def _chunks(model, seed, rows, local_rows, first_id, counts, truth=False):
+def _chunks(model, seed, rows, local_rows, first_id, counts, truth=False, pdfs=True):
     for index, first_row in enumerate(range(0, rows, CHUNK_ROWS)):
         n = min(CHUNK_ROWS, rows - first_row)
-        table = make_chunk(model, seed, index, first_row, n, local_rows, first_id, truth)
+        table = make_chunk(model, seed, index, first_row, n, local_rows, first_id, truth, pdfs)
         for item in pc.value_counts(table.column("z_type")).to_pylist():
             counts[item["values"]] += item["counts"]
         counts["negative_z"] += pc.sum(pc.less(table.column("z"), 0.0)).as_py() or 0
@@ -761,13 +862,16 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--truth", action="store_true",
                         help="also write the true redshift, SED and rest-frame absolute "
                              "magnitudes (columns true_*) beside the observations")
+    parser.add_argument("--no-pdfs", action="store_true",
+                        help=f"leave out the photo-z PDF column {PDF_COLUMN}")
     args = parser.parse_args(argv)
     if args.malformed < 0:
         parser.error("--malformed: must be 0 or more")
     try:
         summary = generate(args.rows, args.out, fmt=args.format, seed=args.seed,
                            cosmology=args.cosmology, first_id=args.first_id,
-                           malformed=args.malformed, truth=args.truth)
+                           malformed=args.malformed, truth=args.truth,
+                           pdfs=not args.no_pdfs)
     except (ValueError, CosmologyError, OSError) as exc:
         print(f"generate.py: error: {exc}", file=sys.stderr)
         return 2

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import shlex
 import signal
 import sys
@@ -39,32 +40,67 @@ def add_arguments(p) -> None:
     p.add_argument("--quiet", action="store_true", help="no progress output")
 
 
+def _terminal_columns(stream) -> int:
+    """Columns of the terminal ``stream`` is on; 0 when not a terminal or of no width."""
+    try:
+        if not stream.isatty():
+            return 0
+        return os.get_terminal_size(stream.fileno()).columns
+    except (OSError, ValueError, AttributeError):
+        return 0
+
+
+def _eta_text(p) -> str:
+    if p.eta_s is not None:
+        return f"{p.eta_s:.0f} s"
+    return "estimating" if p.fraction is not None else "unknown"
+
+
 class _Reporter:
-    """A progress bar on a terminal; a plain log line every few seconds otherwise."""
+    """A progress bar on a terminal; a plain log line every few seconds otherwise.
+
+    The bar shows the percentage of the inputs read (bytes of the files on disk, so CSV.gz
+    runs have one too), rows, rows/s and a smoothed ETA. A terminal of zero columns (some
+    pseudo-terminals of CI systems and batch schedulers) gets the log lines: a bar there
+    would print nothing for the whole run.
+    """
+
+    INTERVAL_S = 5.0
 
     def __init__(self, total: int | None, quiet: bool):
         self.quiet = quiet
-        self.tty = sys.stderr.isatty()
+        self.total = total
+        self.use_bar = not quiet and _terminal_columns(sys.stderr) > 0
         self.bar = None
-        self.last = 0.0
-        if not quiet and self.tty:
-            from tqdm import tqdm
+        self.last: float | None = None
 
-            self.bar = tqdm(total=total, unit="rows", unit_scale=True, dynamic_ncols=True,
-                            file=sys.stderr, desc="annotating")
+    def _postfix(self, p) -> str:
+        return (f"{p.rows_done:,} rows, {p.parts_done} parts, {p.rows_per_second:,.0f} rows/s, "
+                f"ETA {_eta_text(p)}")
 
     def __call__(self, p) -> None:
         if self.quiet:
             return
-        if self.bar is not None:
-            self.bar.update(p.rows_done - self.bar.n)
+        if self.use_bar:
+            from tqdm import tqdm
+
+            if self.bar is None:
+                self.bar = tqdm(total=1000 if p.fraction is not None else None,
+                                bar_format="annotating {percentage:3.0f}%|{bar}| {postfix}"
+                                if p.fraction is not None else "annotating {postfix}",
+                                dynamic_ncols=True, file=sys.stderr)
+            if p.fraction is not None:
+                self.bar.n = int(round(p.fraction * 1000))
+            self.bar.set_postfix_str(self._postfix(p), refresh=False)
+            self.bar.refresh()
             return
         now = time.monotonic()
-        if now - self.last >= 5.0:
+        if self.last is None or now - self.last >= self.INTERVAL_S:  # the first at once
             self.last = now
-            eta = f"{p.eta_s:.0f} s" if p.eta_s is not None else "unknown"
-            print(f"annotator: {p.rows_done} rows, {p.parts_done} parts, "
-                  f"{p.rows_per_second:,.0f} rows/s, ETA {eta}", file=sys.stderr, flush=True)
+            pct = f" ({100 * p.fraction:.0f} %)" if p.fraction is not None else ""
+            print(f"annotator: {p.rows_done} rows{pct}, {p.parts_done} parts, "
+                  f"{p.rows_per_second:,.0f} rows/s, ETA {_eta_text(p)}", file=sys.stderr,
+                  flush=True)
 
     def close(self) -> None:
         if self.bar is not None:
@@ -145,6 +181,14 @@ def main(args) -> int:
         chunk_rows=args.chunk_rows,
         overwrite=args.overwrite,
     )
+    if job.output_dir is not None and not (args.resume or job.overwrite or args.dry_run):
+        from ..engines.common import interrupted_run
+
+        stopped = interrupted_run(job.output_dir, job.fingerprint())
+        if stopped is not None and stopped[0]:
+            raise OutputError(f"output {job.output_dir}: holds an interrupted run of this job "
+                              f"({stopped[1]} parts committed); continue it with: "
+                              f"{resume_command(args)}  (or start again with --overwrite)")
     plan = build_plan(job)
     if not args.config or not job.columns:
         for logical, (col, how) in plan.column_mapping.items():
@@ -164,14 +208,6 @@ def main(args) -> int:
     engine_options = {}
     if args.engine == "dask":
         engine_options = {"scheduler": args.scheduler, "workers": args.workers}
-    if not args.resume and not job.overwrite:
-        from ..engines.common import interrupted_run
-
-        stopped = interrupted_run(job.output_dir, job.fingerprint())
-        if stopped is not None and stopped[0]:
-            raise OutputError(f"output {job.output_dir}: holds an interrupted run of this job "
-                              f"({stopped[1]} parts committed); continue it with: "
-                              f"{resume_command(args)}  (or start again with --overwrite)")
     reporter = _Reporter(plan.estimated_rows, args.quiet)
     with _Interruptions() as stops:
         try:
@@ -180,8 +216,8 @@ def main(args) -> int:
                                 engine_options=engine_options)
         except KeyboardInterrupt as exc:
             reporter.close()
-            how = f"{exc.args[0] if exc.args else 'SIGINT'} received again" \
-                if stops.received else "interrupted"
+            second = exc.args[0] if exc.args else "SIGINT"
+            how = f"{second} received while stopping" if stops.received else "interrupted"
             print(_stopped_message(args, job.output_dir, f"{how}: the part in progress was "
                                    f"abandoned"), file=sys.stderr)
             return stops.exit_code

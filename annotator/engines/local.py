@@ -71,10 +71,17 @@ def iter_pending_chunks(plan, done: dict[int, set[int]]):
         start = 0
         while start in skip:
             start += 1
+        rows = -1  # the reader's row estimate, asked for only if a chunk needs it
         for chunk in reader.chunks(job.chunk_rows, start_chunk=start,
                                    target=plan.catalogue_schema):
             if chunk.index in skip:
                 continue
+            if chunk.bytes_read is None:  # progress: the source's share read, by rows
+                if rows == -1:
+                    rows = reader.estimate_rows() if hasattr(reader, "estimate_rows") else None
+                if rows:
+                    end = min((chunk.index + 1) * job.chunk_rows, rows)
+                    chunk.bytes_read = int(source.size_bytes * end / rows)
             yield chunk
 
 
@@ -94,28 +101,31 @@ def run_local(plan, *, progress=None, resume: bool = False, cancel=None) -> dict
     pipeline.prepare()
     records = log.records()
     done = committed_chunks(records)
-    commits = CommitLog(log, records, plan.estimated_rows, progress)
+    commits = CommitLog(log, records, plan.estimated_rows, progress,
+                        total_bytes=sum(s.size_bytes for s in plan.sources))
 
     with ThreadPoolExecutor(max_workers=1, thread_name_prefix="annotator-checksum") as hasher, \
             ThreadPoolExecutor(max_workers=WRITERS, thread_name_prefix="annotator-writer") as writer:
         sums = {str(s.path): hasher.submit(file_sha256, s.path) for s in plan.sources}
-        in_flight: list[Future] = []
+        in_flight: list[tuple[Future, tuple[int, int | None]]] = []
 
         def drain(limit: int) -> None:
             while len(in_flight) > limit:
-                commits.commit(in_flight.pop(0).result())
+                future, position = in_flight.pop(0)
+                commits.commit(future.result(), position)
 
         try:
             for chunk in _prefetch(iter_pending_chunks(plan, done), depth=PREFETCH):
                 annotated, counts, flagged = pipeline.annotate(chunk.table)
-                in_flight.append(writer.submit(write_chunk, out, job.compression, metadata,
-                                               chunk, annotated, counts, flagged))
+                in_flight.append((writer.submit(write_chunk, out, job.compression, metadata,
+                                                chunk, annotated, counts, flagged),
+                                  (chunk.source.index, chunk.bytes_read)))
                 drain(WRITERS)
                 if cancel is not None and cancel.is_set():
                     break
             drain(0)
         except BaseException:
-            for f in in_flight:  # commit what is already annotated, then stop
+            for f, _ in in_flight:  # commit what is already annotated, then stop
                 try:
                     log.append(f.result())
                 except Exception:

@@ -58,15 +58,22 @@ def _open_binary(path: Path):
     return raw
 
 
-def iter_line_blocks(path: Path, block_bytes: int) -> Iterator[bytearray]:
+def iter_line_blocks(path: Path, block_bytes: int, where: list | None = None
+                     ) -> Iterator[bytearray]:
     """Blocks of whole lines (each ends with a newline, except perhaps the last), read into
-    a fresh buffer each (one copy from the file; pyarrow reads the buffer without another)."""
+    a fresh buffer each (one copy from the file; pyarrow reads the buffer without another).
+
+    ``where``: if given, ``where[0]`` is kept at the bytes of the file on disk read so far
+    (of the compressed file for .gz), for progress (``Chunk.bytes_read``).
+    """
     with _open_binary(path) as fh:
         tail = b""
         while True:
             buf = bytearray(len(tail) + block_bytes)
             buf[: len(tail)] = tail
             n = fh.readinto(memoryview(buf)[len(tail):])
+            if where is not None:  # progress: position in the file on disk
+                where[0] = getattr(fh, "fileobj", fh).tell()
             if not n:
                 if tail:
                     yield bytearray(tail)
@@ -429,7 +436,20 @@ class CsvReader:
     def parse_block(self, block, first_line: int, target: pa.Schema
                     ) -> tuple[pa.Table, list[dict], int]:
         """Parse one block of whole lines that starts at physical line ``first_line``;
-        returns the rows read, the rows set aside and the block's count of physical lines."""
+        returns the rows read, the rows set aside and the block's count of physical lines.
+
+        A column whose target type is a list (another input, Parquet, has it so) is read as
+        text and converted by :func:`text_to_list` (``;``-separated numbers)."""
+        if not any(_is_list(f.type) for f in target):
+            return self._parse_block(block, first_line, target)
+        table, rejected, n_lines = self._parse_block(block, first_line, _lists_as_text(target))
+        for i, f in enumerate(target):
+            if _is_list(f.type):
+                table = table.set_column(i, f.name, text_to_list(table.column(f.name), f.type))
+        return table, rejected, n_lines
+
+    def _parse_block(self, block, first_line: int, target: pa.Schema
+                     ) -> tuple[pa.Table, list[dict], int]:
         clean, numbers, rejected, n_lines = self._clean(block, first_line)
         if not clean:
             return target.empty_table(), rejected, n_lines
@@ -508,11 +528,11 @@ class CsvReader:
             raise InputError(f"input {self.source.path}: cannot convert columns: {exc}") from exc
         return kept, sorted(bad_reason.items())
 
-    def _body_blocks(self) -> Iterator[bytearray]:
+    def _body_blocks(self, where: list | None = None) -> Iterator[bytearray]:
         """The blocks after the header line (which may lack a newline); the first data line
-        is physical line 2."""
+        is physical line 2. ``where``: see :func:`iter_line_blocks` (progress)."""
         first = True
-        for block in iter_line_blocks(self.source.path, self.block_bytes):
+        for block in iter_line_blocks(self.source.path, self.block_bytes, where):
             if first:
                 first = False
                 cut = block.find(b"\n")
@@ -533,10 +553,15 @@ class CsvReader:
         pending_rows = 0
         pending_rejected: list[dict] = []
         line = 2
+        # Progress (issue 16): file bytes read so far and before this block, so that a chunk
+        # ending inside a block gets its share of it (Chunk.bytes_read).
+        where, before = [0], 0
         try:
-            for block in self._body_blocks():
+            for block in self._body_blocks(where):
                 table, rejected, n_lines = self.parse_block(block, line, target)
                 line += n_lines
+                per_row = (where[0] - before) / max(n_lines, 1)  # progress
+                before = where[0]
                 pending.append(table)
                 pending_rows += table.num_rows
                 pending_rejected.extend(rejected)
@@ -544,7 +569,8 @@ class CsvReader:
                     whole = pa.concat_tables(pending)
                     head, rest = whole.slice(0, chunk_rows), whole.slice(chunk_rows)
                     if index >= start_chunk:
-                        yield Chunk(self.source, index, head.combine_chunks(), pending_rejected)
+                        yield Chunk(self.source, index, head.combine_chunks(), pending_rejected,
+                                    bytes_read=int(where[0] - rest.num_rows * per_row))
                     pending_rejected = []
                     index += 1
                     pending = [rest.combine_chunks()] if rest.num_rows else []
@@ -556,7 +582,8 @@ class CsvReader:
                 from exc
         if (pending_rows or pending_rejected) and index >= start_chunk:
             whole = pa.concat_tables(pending) if pending else target.empty_table()
-            yield Chunk(self.source, index, whole.combine_chunks(), pending_rejected)
+            yield Chunk(self.source, index, whole.combine_chunks(), pending_rejected,
+                        bytes_read=self.source.size_bytes)
 
 
 def _decode_lenient(raw: bytes, encoding: str) -> str:
@@ -639,6 +666,39 @@ def _why(field: pa.Field, text) -> str:
             pass
     # the value itself is in the raw text; a fixed reason groups well in SQL
     return f"column {field.name!r}: text where a {field.type} belongs"
+
+
+LIST_SEPARATOR = ";"
+
+
+def _is_list(typ: pa.DataType) -> bool:
+    return pa.types.is_list(typ) or pa.types.is_large_list(typ) or \
+        pa.types.is_fixed_size_list(typ)
+
+
+def _lists_as_text(schema: pa.Schema) -> pa.Schema:
+    return pa.schema([pa.field(f.name, pa.string()) if _is_list(f.type) else f for f in schema])
+
+
+def text_to_list(col, typ: pa.DataType) -> pa.Array:
+    """A CSV field holding a ``;``-separated list of numbers, as the list type ``typ`` that
+    another input (Parquet) has for the column. An empty field is null; an element that is
+    not a number becomes a null element (the annotator that reads the list flags the row)."""
+    import pandas as pd
+
+    if isinstance(col, pa.ChunkedArray):
+        col = col.combine_chunks()
+    value_type = typ.value_type
+    parts = pc.split_pattern(pc.utf8_trim_whitespace(col), LIST_SEPARATOR)
+    flat = pc.utf8_trim_whitespace(parts.flatten())
+    try:
+        values = pc.cast(flat, value_type)
+    except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+        strings = pd.Series(flat.to_numpy(zero_copy_only=False), dtype=object)
+        values = pa.array(pd.to_numeric(strings, errors="coerce"), from_pandas=True)
+        values = pc.cast(values, value_type)
+    out = pa.ListArray.from_arrays(parts.offsets, values, mask=col.is_null())
+    return out.cast(typ) if out.type != typ else out
 
 
 def _row_values(table: pa.Table, i: int) -> list:

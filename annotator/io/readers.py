@@ -41,6 +41,10 @@ class Chunk:
     index: int
     table: pa.Table
     rejected: list[dict] = field(default_factory=list)
+    # Progress (issue 16): bytes of the source file consumed once this chunk was read -- of the
+    # compressed file for .gz, so a CSV.gz run shows a percentage and an ETA. None when the
+    # reader does not tell; the local engine then estimates it from the row count.
+    bytes_read: int | None = None
 
     @property
     def rows_read(self) -> int:

@@ -462,6 +462,15 @@ def build_report(folder: str | Path, to: str | Path, *, sample_rows: int = DEFAU
             "No redshift column in this output (the manifest maps none): no histogram.",
             skipped="redshift-distribution") + "</section>")
 
+    # -- reachability probability and redshift posteriors (when the output has them)
+    if out.has("reachable_probability"):
+        from . import posteriors
+
+        html_text, drawn, why = posteriors.section(out, derived)
+        sections.append(html_text)
+        figs.extend(drawn)
+        skipped.update(why)
+
     # -- Hubble diagram and absolute magnitudes
     hubble_parts = ['<section id="hubble"><h2>Hubble diagram and absolute magnitudes</h2>']
     mu = sample.get("distance_modulus_mag")
@@ -585,7 +594,8 @@ def build_report(folder: str | Path, to: str | Path, *, sample_rows: int = DEFAU
         f"{page.esc(cosmo_name)}.</p>"
         '<nav><a href="#summary">Summary</a><a href="#cosmology">Cosmology</a>'
         '<a href="#distances">Distances</a><a href="#redshifts">Redshifts</a>'
-        '<a href="#hubble">Hubble diagram</a><a href="#sky">Sky map</a>'
+        + ('<a href="#posteriors">Posteriors</a>' if out.has("reachable_probability") else "")
+        + '<a href="#hubble">Hubble diagram</a><a href="#sky">Sky map</a>'
         '<a href="#rejected">Set aside</a><a href="#provenance">Run</a>'
         '<a href="#method">Method</a></nav></header>'
     )

@@ -270,3 +270,44 @@ def test_cli_errors_are_one_line(tmp_path, gen, capsys):
                      "--cosmology", "nonesuch"]) == 2
     assert "nonesuch" in capsys.readouterr().err
     assert not list(tmp_path.iterdir())
+
+
+def test_photoz_pdfs_have_their_own_random_stream(tmp_path, gen, survey_model):
+    """Every other column is identical with and without the PDFs (the posteriors draw from
+    their own stream), and the PDFs are as documented: one per object with a redshift, on the
+    grid of pdf_grid.csv, peak 1, and about PDF_BIMODAL_FRACTION (+ the outliers) with a
+    second peak (counted by the redshift_pdf plugin's peak finder: a consistency check)."""
+    from annotator_plugins.redshift_pdf.posterior import count_modes, trapezoid_weights
+
+    gen.generate(3000, tmp_path / "with.parquet", seed=5, model=survey_model)
+    gen.generate(3000, tmp_path / "without.parquet", seed=5, model=survey_model, pdfs=False)
+    a = pq.read_table(tmp_path / "with.parquet")
+    b = pq.read_table(tmp_path / "without.parquet")
+    assert a.column_names == b.column_names + [gen.PDF_COLUMN]
+    for name in b.column_names:
+        assert a.column(name).equals(b.column(name)), name
+    pdf = a.column(gen.PDF_COLUMN).combine_chunks()
+    z = a.column("z").to_numpy(zero_copy_only=False)
+    assert (pdf.is_null().to_numpy(zero_copy_only=False) == np.isnan(z)).all()
+    dens = np.array([r for r in pdf.to_pylist() if r is not None])
+    assert dens.shape[1] == gen.PDF_NODES and (dens >= 0).all()
+    np.testing.assert_array_equal(dens.max(axis=1), 1.0)
+    grid = gen.pdf_grid()
+    write = tmp_path / "grid.csv"
+    gen.write_pdf_grid(write)
+    np.testing.assert_allclose(np.loadtxt(write, skiprows=1), grid, rtol=0, atol=1e-10)
+    modes, _ = count_modes(dens, trapezoid_weights(grid), 0.05, 0.01)
+    two = np.mean(modes >= 2)
+    assert gen.PDF_BIMODAL_FRACTION - 0.03 < two < gen.PDF_BIMODAL_FRACTION + 0.05
+    # the CSV holds the same PDFs as ';'-separated text
+    gen.generate(200, tmp_path / "c.csv", seed=5, model=survey_model, malformed=0)
+    gen.generate(200, tmp_path / "c.parquet", seed=5, model=survey_model)
+    lines = (tmp_path / "c.csv").read_text().splitlines()
+    assert lines[0].split(",")[-1] == gen.PDF_COLUMN
+    ref = pq.read_table(tmp_path / "c.parquet").column(gen.PDF_COLUMN).to_pylist()
+    for line, row in zip(lines[1:], ref):
+        field = line.split(",")[-1]
+        if row is None:
+            assert field == ""
+        else:
+            np.testing.assert_allclose([float(v) for v in field.split(";")], row, atol=1e-6)
