@@ -509,8 +509,9 @@ def build_report(folder: str | Path, to: str | Path, *, sample_rows: int = DEFAU
             + ", ".join(f"<code>{page.esc(c)}</code>" for c in out.bands.values())
             + "). A flux-limited survey sees only ever brighter objects at higher redshift: "
             "the dashed line, the 98th percentile of unflagged M in redshift bins of the "
-            "sample, traces that faint edge. Rows whose value carries a flag of its band "
-            "(e.g. a colour clipped to a template) are drawn apart as orange triangles; rows "
+            "sample, traces that faint edge. Rows whose value carries a flag of its band or of "
+            "the whole row (e.g. a colour clipped to a template, a redshift posterior with a "
+            "secondary peak) are drawn apart as orange triangles; rows "
             "whose K-correction was refused (null, with a flag naming why) cannot be drawn "
             "and are counted instead, over every row of the output (" + refused + "). "
             + sample_line))

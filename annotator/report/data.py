@@ -23,6 +23,8 @@ from ..errors import OutputError
 from ..provenance import read_manifest
 
 REJECTED_DIR = "rejected"
+# absolute_magnitude_<band>_<summary>_mag: percentiles and means of a redshift posterior
+POSTERIOR_SUMMARIES = ("p16", "p50", "p84", "mean")
 BAND_COLUMN = re.compile(r"^absolute_magnitude_([a-z0-9_]+?)_mag$")
 # Position columns tried when the manifest maps none (case-insensitive, first match wins).
 RA_NAMES = ("ra", "ra_deg", "radeg", "raj2000", "ra_j2000", "ra_icrs", "alpha", "alpha_j2000")
@@ -102,6 +104,9 @@ def _bands(manifest: dict, schema: pa.Schema) -> dict[str, str]:
         m = BAND_COLUMN.match(name)
         if m is None or m.group(1).endswith("_err"):  # absolute_magnitude_<band>_err_mag
             continue
+        base, _, tag = m.group(1).rpartition("_")
+        if tag in POSTERIOR_SUMMARIES and f"absolute_magnitude_{base}_mag" in schema.names:
+            continue  # a posterior summary of band <base>, not a band of its own
         typ = schema.field(name).type
         if pa.types.is_floating(typ) or pa.types.is_integer(typ):
             bands.setdefault(m.group(1), name)
@@ -411,17 +416,34 @@ def draw_sample(out: Output, columns: list[str], n: int, seed: int,
 FLAGS_COLUMN = "annotation_flags"
 
 
+def _band_of_flag(name: str, bands: list[str]) -> str | None:
+    """The band a band-specific flag (``kcorrection_<band>_*``, ``magnitude_<band>_*``)
+    belongs to, the longest matching band name winning (``amber_from_crimson`` over
+    ``amber``); ``None`` for a flag of the whole row (redshift, posterior, sentinel, ...)."""
+    owner = None
+    for band in bands:
+        for prefix in (f"kcorrection_{band}_", f"magnitude_{band}_"):
+            if name.startswith(prefix) and (owner is None or len(band) > len(owner)):
+                owner = band
+    return owner
+
+
+# Flags of the whole row that cast doubt on a point absolute magnitude: the catalogue
+# redshift's own checks, sentinel values read as null, and a redshift posterior with a
+# secondary peak (a catastrophic photometric redshift puts M wherever the wrong z does).
+# The other redshift_pdf_* flags concern only the posterior's own columns.
+ROW_FLAGS_FOR_MAGNITUDES = re.compile(r"^(redshift_(?!pdf_)|sentinel_|redshift_pdf_secondary_peak$)")
+
+
 def band_flag_names(band: str, bands: list[str], known: list[str]) -> list[str]:
-    """The flags (of ``known``) that concern band ``band``'s absolute magnitude: its
-    ``kcorrection_<band>_*`` and ``magnitude_<band>_missing`` flags, not those of a band
-    whose name merely starts with it (``amber`` versus ``amber_from_crimson``)."""
-    longer = [b for b in bands if b != band and b.startswith(band + "_")]
+    """The flags (of ``known``) that concern band ``band``'s absolute magnitude: its own
+    ``kcorrection_<band>_*`` and ``magnitude_<band>_*`` flags and the flags of the whole row
+    that cast doubt on it (:data:`ROW_FLAGS_FOR_MAGNITUDES`), but not another band's."""
     out = []
     for name in known:
-        for prefix in (f"kcorrection_{band}_", f"magnitude_{band}_"):
-            if name.startswith(prefix) and not any(
-                    name.startswith(prefix.replace(band, other, 1)) for other in longer):
-                out.append(name)
+        owner = _band_of_flag(name, bands)
+        if owner == band or (owner is None and ROW_FLAGS_FOR_MAGNITUDES.match(name)):
+            out.append(name)
     return out
 
 

@@ -14,16 +14,32 @@ from annotator.report.data import band_counts, band_flag_names, flagged_in_sampl
 
 KNOWN = ["kcorrection_amber_colour_clipped", "kcorrection_amber_colour_outside_range",
          "kcorrection_amber_from_crimson_colour_clipped", "magnitude_amber_missing",
-         "magnitude_amber_from_crimson_missing", "redshift_missing"]
+         "magnitude_amber_from_crimson_missing", "redshift_missing",
+         "redshift_pdf_secondary_peak", "redshift_pdf_magnitude_partial", "sentinel_mag_amber"]
 
 
 def test_flags_of_a_band_exclude_a_longer_band_named_after_it():
+    # a band's own flags and the row flags that cast doubt on M, never another band's nor
+    # the posterior's own (redshift_pdf_magnitude_partial)
     bands = ["amber", "amber_from_crimson"]
     assert band_flag_names("amber", bands, KNOWN) == [
         "kcorrection_amber_colour_clipped", "kcorrection_amber_colour_outside_range",
-        "magnitude_amber_missing"]
+        "magnitude_amber_missing", "redshift_missing", "redshift_pdf_secondary_peak",
+        "sentinel_mag_amber"]
     assert band_flag_names("amber_from_crimson", bands, KNOWN) == [
-        "kcorrection_amber_from_crimson_colour_clipped", "magnitude_amber_from_crimson_missing"]
+        "kcorrection_amber_from_crimson_colour_clipped", "magnitude_amber_from_crimson_missing",
+        "redshift_missing", "redshift_pdf_secondary_peak", "sentinel_mag_amber"]
+
+
+def test_posterior_summaries_are_not_bands_of_their_own():
+    from annotator.report.data import _bands
+
+    names = ["absolute_magnitude_amber_mag", "absolute_magnitude_amber_err_mag",
+             "absolute_magnitude_amber_p16_mag", "absolute_magnitude_amber_mean_mag",
+             "absolute_magnitude_wide_mean_mag"]  # no absolute_magnitude_wide_mag: a band
+    schema = pa.schema([(n, pa.float64()) for n in names])
+    assert _bands({}, schema) == {"amber": "absolute_magnitude_amber_mag",
+                                  "wide_mean": "absolute_magnitude_wide_mean_mag"}
 
 
 def test_sampled_rows_and_whole_output_counts(tmp_path):
