@@ -4,7 +4,7 @@ VENV   := .venv
 BIN    := $(VENV)/bin
 DEMO_OUT := demo_output
 
-.PHONY: demo test venv clean bench lint mutate
+.PHONY: demo test venv clean bench lint mutate test-browser
 
 $(BIN)/activate:
 	rm -rf $(VENV)
@@ -22,6 +22,15 @@ demo: venv-base
 
 test: venv-test
 	$(BIN)/python -m pytest -n 2 -q
+
+# The browser tests (status page, report) in a headless Chromium: installs Debian's chromium
+# and chromium-driver (needs root, or run the apt-get line yourself) and selenium, then runs
+# every test marked "browser". `make test` runs them too wherever chromium is present.
+test-browser: venv-test
+	command -v chromium >/dev/null && command -v chromedriver >/dev/null || \
+		apt-get install -y chromium chromium-driver
+	$(BIN)/python -m pip install --quiet -e '.[browser]'
+	$(BIN)/python -m pytest -q -m browser
 
 bench: venv-test
 	$(BIN)/python benchmarks/run_all.py

@@ -8,4 +8,4 @@ packages += ["annotator_plugins"] + [
     "annotator_plugins." + p for p in find_packages("plugins")
 ]
 setup(packages=packages, package_dir={"annotator_plugins": "plugins"},
-      package_data={"annotator": ["py.typed"], "annotator_plugins": ["**/*.csv", "**/*.toml"]})
+      package_data={"annotator": ["py.typed", "service/templates/*.html", "service/static/*"], "annotator_plugins": ["**/*.csv", "**/*.toml"]})

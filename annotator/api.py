@@ -25,7 +25,7 @@ import numpy as np
 import pyarrow as pa
 
 from .columns import ColumnSpec
-from .errors import ConfigError
+from .errors import ConfigError, PathRefusedError
 
 __all__ = ["Annotator", "Setup", "Batch", "ColumnSpec"]
 
@@ -169,7 +169,7 @@ class Setup:
         if self.allowed_roots:
             real = Path(os.path.realpath(p))
             if not any(real.is_relative_to(root) for root in map(Path, self.allowed_roots)):
-                raise ConfigError(
+                raise PathRefusedError(
                     f"[annotators.{self.annotator_name}]: file {path} is outside the folders "
                     f"this job may read ({', '.join(map(str, self.allowed_roots))})"
                 )

@@ -32,3 +32,7 @@ class OutputError(UserError):
 
 class PluginError(UserError):
     """A plugin is broken: a misspelt hook, a duplicate name, a bad declaration."""
+
+
+class PathRefusedError(ConfigError):
+    """A job names a file outside the folders it may read (the service answers 403)."""

@@ -27,6 +27,7 @@ SCRIPTS = [
     ("bench_dask.py", []),
     ("bench_report.py", []),
     ("bench_csv.py", []),
+    ("bench_service.py", []),
 ]
 
 

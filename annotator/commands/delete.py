@@ -6,7 +6,7 @@ from .submit import add_server_arguments
 
 
 def add_arguments(p) -> None:
-    p.add_argument("job_id", metavar="ID", help="a COMPLETED, ERROR or ABORTED job")
+    p.add_argument("job_id", metavar="ID", help="a COMPLETED, ERROR, ABORTED or ARCHIVED job")
     add_server_arguments(p)
 
 

@@ -12,7 +12,7 @@ def add_arguments(p) -> None:
     add_server_arguments(p)
     p.add_argument("--phase", default=None,
                    help="only jobs in this phase (PENDING, QUEUED, EXECUTING, COMPLETED, "
-                        "ERROR, ABORTED)")
+                        "ERROR, ABORTED, ARCHIVED)")
     p.add_argument("--limit", type=int, default=None, metavar="N",
                    help="only the N most recent jobs")
     p.add_argument("--json", action="store_true",

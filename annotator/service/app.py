@@ -11,12 +11,20 @@ Routes (every answer is JSON; errors are ``{"error": "..."}`` with a 4xx/5xx sta
   ``?limit=N`` (the N most recent).
 * ``GET /jobs/{id}`` - one job, with its manifest once COMPLETED and its history.
 * ``POST /jobs/{id}/abort`` - to ABORTED (its worker process is killed); 409 if it has ended.
+* ``DELETE /jobs/{id}`` - forget a finished or archived job and remove its folder.
+* ``GET /jobs/{id}/report`` - the job's HTML report, once built.
+* ``GET /metrics`` - OpenMetrics text (:mod:`.metrics`).
+* ``GET /``, ``/ui/...``, ``/signin``, ``/static/...`` - the status page (:mod:`.web`).
+
+Every answer carries ``X-Request-Id``; a 500 names it, and the log has the traceback under it.
 """
 
 from __future__ import annotations
 
+import asyncio
 import json
-import shutil
+import logging
+import secrets
 import sys
 import threading
 import time
@@ -24,6 +32,7 @@ import traceback
 from contextlib import asynccontextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
+from urllib.parse import unquote_plus
 
 from fastapi import FastAPI, HTTPException, Request
 from starlette.exceptions import HTTPException as StarletteHTTPException
@@ -32,10 +41,15 @@ from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
 
 from .. import __version__
-from ..errors import ConfigError, UserError
-from .ledger import ACTIVE, FINAL, PHASES, Ledger
-from .security import AccessError, check_input_files, check_input_paths, token_matches
+from ..errors import ConfigError, PathRefusedError, UserError
+from .ledger import ACTIVE, DELETABLE, PHASES, Ledger
+from .security import (SESSION_COOKIE, Sessions, check_input_files,
+                       check_input_paths, token_matches)
+from .housekeeping import DiskGuard, Retention, remove_job_folder
+from .privacy import privacy_for
 from .workers import WorkerPool, manifest_of
+
+log = logging.getLogger("annotator.service")
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -68,6 +82,14 @@ class ServiceConfig:
     workers: int = 1
     max_request_bytes: int = MAX_REQUEST_BYTES
     max_crashes: int = 3
+    head_timeout_s: float = 10.0
+    body_timeout_s: float = 30.0
+    group: str | None = None
+    keep_days: float | None = None
+    keep_count: int | None = None
+    disk_fraction: float = 0.8
+    disk_wait_s: float = 3600.0
+    reports: bool = True
     started_at: float = field(default_factory=time.time)
 
     @property
@@ -75,40 +97,122 @@ class ServiceConfig:
         return self.root / JOBS_DIR
 
 
-class _RequestTooLarge(Exception):
-    pass
+MAX_PATH_CHARS = 2048
+MAX_HEAD_BYTES = 16 * 1024
+MAX_QUERY_CHARS = 4096
+#: deepest nesting of tables/arrays a job mapping may have (a real job file has 3)
+MAX_JOB_DEPTH = 32
+#: the paths that need neither the token nor a session: the sign-in form and its styles
+PUBLIC_PREFIXES = ("/signin", "/static/")
+REQUEST_ID = "annotator.request_id"
+AUTH = "annotator.auth"
+
+
+def _has_control(text: str) -> bool:
+    return any(ord(ch) < 32 or ord(ch) == 127 for ch in text)
 
 
 class Guard:
-    """ASGI middleware: the bearer token (when set) and the request-size limit, on every request.
+    """ASGI middleware run on every request, before any route.
 
-    A declared ``Content-Length`` over the limit is refused before the body is read; a body
-    sent without one is counted as it arrives (see :func:`_read_body`).
+    * gives the request an id (``X-Request-Id`` on every answer; a 500 names it and the
+      service log has the traceback under it);
+    * refuses a target with control characters (NUL included: 400) or over
+      ``MAX_PATH_CHARS``/``MAX_QUERY_CHARS`` (414) before any route sees it;
+    * checks who is asking: the bearer token (when the service has one) on every request, or a
+      signed-in session cookie of the status page for reading (GET/HEAD) and for the page's
+      own forms under ``/ui/`` (which carry a CSRF token, checked by :mod:`.web`);
+    * refuses a declared ``Content-Length`` over the limit before the body is read (a body
+      sent without one is counted as it arrives, see :func:`read_body`).
     """
 
-    def __init__(self, app, token: str | None, max_bytes: int):
-        self.app, self.token, self.max_bytes = app, token, max_bytes
+    def __init__(self, app, token: str | None, max_bytes: int, sessions=None):
+        self.app, self.token, self.max_bytes, self.sessions = app, token, max_bytes, sessions
 
     async def __call__(self, scope, receive, send):
         if scope["type"] != "http":
             return await self.app(scope, receive, send)
-        headers = {k.lower(): v for k, v in scope.get("headers", [])}
-        if self.token is not None:
-            given = headers.get(b"authorization", b"").decode("latin-1")
-            if not token_matches(given, self.token):
-                return await _send_json(send, 401, {
-                    "error": "this service needs a token: send 'Authorization: Bearer <token>' "
-                             "(annotator submit/jobs/abort --token, or ANNOTATOR_SERVICE_TOKEN)"},
-                    extra=[(b"www-authenticate", b"Bearer")])
+        rid = secrets.token_hex(6)
+        scope[REQUEST_ID] = rid
+
+        async def send_with_id(message):
+            if message["type"] == "http.response.start":
+                message = {**message, "headers": [*message.get("headers", []),
+                                                  (b"x-request-id", rid.encode())]}
+            await send(message)
+
+        refusal = self._refusal(scope)
+        if refusal is not None:
+            status, payload, extra = refusal
+            return await _send_json(send_with_id, status, {**payload, "request_id": rid},
+                                    extra=extra)
+        return await self.app(scope, receive, send_with_id)
+
+    def _refusal(self, scope):
+        """(status, payload, extra headers) if the request is refused here, else None."""
+        path, query = scope.get("path", ""), scope.get("query_string", b"")
+        if len(scope.get("raw_path", b"")) > MAX_PATH_CHARS or len(path) > MAX_PATH_CHARS:
+            return 414, {"error": f"request path over {MAX_PATH_CHARS} characters"}, ()
+        if len(query) > MAX_QUERY_CHARS:
+            return 414, {"error": f"query string over {MAX_QUERY_CHARS} characters"}, ()
+        if _has_control(path):
+            return 400, {"error": "request path holds a control character (NUL, newline...)"}, ()
+        try:
+            decoded_query = unquote_plus(query.decode("latin-1"), errors="strict")
+        except UnicodeDecodeError:
+            return 400, {"error": "query string is not UTF-8 once percent-decoded"}, ()
+        if _has_control(decoded_query):
+            return 400, {"error": "query string holds a control character (NUL, newline...)"}, ()
+        raw_headers = scope.get("headers", [])
+        if sum(len(k) + len(v) + 4 for k, v in raw_headers) > MAX_HEAD_BYTES:
+            return 431, {"error": f"request headers over {MAX_HEAD_BYTES} bytes"}, ()  # RFC 6585
+        headers = {k.lower(): v for k, v in raw_headers}
+        scope[AUTH] = self._who(scope, headers)
+        if scope[AUTH] is None:
+            method = scope.get("method", "GET")
+            if method in ("GET", "HEAD") and (path == "/" or path.startswith("/ui/")):
+                return 303, {"error": "sign in first: /signin"}, [(b"location", b"/signin")]
+            return 401, {
+                "error": "this service needs a token: send 'Authorization: Bearer <token>' "
+                         "(annotator submit/jobs/abort --token, or ANNOTATOR_SERVICE_TOKEN), "
+                         "or sign in on the status page"}, [(b"www-authenticate", b"Bearer")]
         length = headers.get(b"content-length")
         if length is not None:
             try:
                 declared = int(length)
             except ValueError:
-                return await _send_json(send, 400, {"error": "Content-Length is not a number"})
+                return 400, {"error": "Content-Length is not a number"}, ()
             if declared > self.max_bytes:
-                return await _send_json(send, 413, {"error": _too_large(self.max_bytes)})
-        return await self.app(scope, receive, send)
+                return 413, {"error": _too_large(self.max_bytes)}, ()
+        return None
+
+    def _who(self, scope, headers) -> str | None:
+        """'bearer', 'session', 'open' (no token set) or 'public'; None if not allowed."""
+        path, method = scope.get("path", ""), scope.get("method", "GET")
+        if self.token is None:
+            return "open"
+        given = headers.get(b"authorization", b"").decode("latin-1")
+        if token_matches(given, self.token):
+            return "bearer"
+        if path.startswith(PUBLIC_PREFIXES):
+            return "public"
+        if self.sessions is not None and self.sessions.signed_in(
+                session_cookie(headers.get(b"cookie", b""))):
+            if method in ("GET", "HEAD") or path.startswith("/ui/"):
+                return "session"
+        return None
+
+
+def session_cookie(raw: bytes) -> str | None:
+    """The status page's session id from a Cookie header (None if absent or unreadable)."""
+    from http.cookies import CookieError, SimpleCookie
+
+    try:
+        jar = SimpleCookie(raw.decode("latin-1"))
+    except CookieError:
+        return None
+    morsel = jar.get(SESSION_COOKIE)
+    return morsel.value if morsel is not None else None
 
 
 async def _send_json(send, status: int, payload: dict, extra=()) -> None:
@@ -124,13 +228,43 @@ def _too_large(limit: int) -> str:
             f"it does not carry them)")
 
 
-async def _read_body(request: Request, limit: int) -> bytes:
+async def read_body(request: Request, limit: int, timeout_s: float) -> bytes:
+    """The request body, refused over ``limit`` bytes (413) or when it has not fully arrived
+    ``timeout_s`` after the head (408: a slow client cannot hold the request open)."""
     body = bytearray()
-    async for chunk in request.stream():
-        body += chunk
-        if len(body) > limit:
-            raise HTTPException(413, _too_large(limit))
+
+    async def collect():
+        async for chunk in request.stream():
+            body.extend(chunk)
+            if len(body) > limit:
+                raise HTTPException(413, _too_large(limit))
+
+    try:
+        await asyncio.wait_for(collect(), timeout_s)
+    except asyncio.TimeoutError:
+        # and close the connection: the rest of the body may still trickle in
+        raise HTTPException(408, f"request body not received within {timeout_s:g} s "
+                                 f"({len(body)} bytes arrived)",
+                            headers={"connection": "close"}) from None
     return bytes(body)
+
+
+def _depth(value) -> int:
+    """How deeply tables and arrays nest in ``value`` (iterative: no recursion limit)."""
+    deepest, stack = 0, [(value, 1)]
+    while stack:
+        item, level = stack.pop()
+        if isinstance(item, dict):
+            children = item.values()
+        elif isinstance(item, list):
+            children = item
+        else:
+            continue
+        deepest = max(deepest, level)
+        if deepest > MAX_JOB_DEPTH:
+            return deepest
+        stack.extend((c, level + 1) for c in children)
+    return deepest
 
 
 def parse_job_body(body: bytes, content_type: str | None) -> dict:
@@ -152,13 +286,22 @@ def parse_job_body(body: bytes, content_type: str | None) -> dict:
             data = json.loads(text)
         except json.JSONDecodeError as exc:
             raise ConfigError(f"job: not valid JSON: {exc}") from None
+        except RecursionError:
+            raise ConfigError(f"job: JSON nested more than {MAX_JOB_DEPTH} levels deep "
+                              f"(a job file needs 3)") from None
     else:
         try:
             data = tomllib.loads(text)
         except tomllib.TOMLDecodeError as exc:
             raise ConfigError(f"job: not valid TOML: {exc}") from None
+        except RecursionError:
+            raise ConfigError(f"job: TOML nested more than {MAX_JOB_DEPTH} levels deep "
+                              f"(a job file needs 3)") from None
     if not isinstance(data, dict):
         raise ConfigError("job: expected a table of sections ([input], [output], ...)")
+    if _depth(data) > MAX_JOB_DEPTH:
+        raise ConfigError(f"job: tables and arrays nested more than {MAX_JOB_DEPTH} levels "
+                          f"deep (a job file needs 3)")
     return data
 
 
@@ -223,23 +366,43 @@ def validate_submission(mapping: dict, *, base_dir: str | None, config: ServiceC
         "annotators": [s.name for s in plan.steps],
         "columns_added": [c.name for c in plan.added_columns],
         "estimated_rows": plan.estimated_rows,
+        "estimated_output_bytes": plan.estimated_output_bytes(),
         "chunk_rows": job.chunk_rows,
     }
     return Submission(stored, str(job.base_dir), notes, plan.estimated_rows, summary)
 
 
+MAX_LIMIT = 100_000
+
+
+def parse_limit(text: str | None) -> int | None:
+    """``?limit=N``: a whole number from 1 to MAX_LIMIT (400 otherwise, naming it)."""
+    if text is None:
+        return None
+    if not (text.isascii() and text.isdigit()) or len(text) > 6 or not 1 <= int(text) <= MAX_LIMIT:
+        raise HTTPException(400, f"limit: {text[:40]!r} is not a whole number from 1 to "
+                                 f"{MAX_LIMIT}")
+    return int(text)
+
+
 def _status_of(exc: UserError) -> int:
     """403 for a path the service may not touch; 400 for anything else wrong with the job."""
-    return 403 if isinstance(exc, AccessError) else 400
+    return 403 if isinstance(exc, PathRefusedError) else 400
 
 
 def create_app(config: ServiceConfig) -> FastAPI:
     """The FastAPI application; starts the scheduler on startup, stops it on shutdown."""
+    # modes from the umask the service set (annotator/service/privacy.py)
     config.root.mkdir(parents=True, exist_ok=True)
     config.jobs_dir.mkdir(exist_ok=True)
     ledger = Ledger(config.root)
+    privacy = privacy_for(config.group)
     pool = WorkerPool(ledger, config.data_roots, workers=config.workers,
-                      max_crashes=config.max_crashes)
+                      max_crashes=config.max_crashes, umask=privacy.umask,
+                      retention=Retention(config.jobs_dir, config.keep_days, config.keep_count),
+                      disk_guard=DiskGuard(config.jobs_dir, config.disk_fraction,
+                                           config.disk_wait_s), reports=config.reports)
+    sessions = Sessions(open_service=config.token is None)
     plugins = _PluginManager()
     # One validation at a time: annotators' configure() need not be thread-safe, and
     # validation is CPU-bound (the interpreter lock serialises it anyway).
@@ -264,20 +427,24 @@ def create_app(config: ServiceConfig) -> FastAPI:
 
     app = FastAPI(title="annotator batch service", version=__version__, lifespan=lifespan,
                   docs_url=None, redoc_url=None)
-    app.add_middleware(Guard, token=config.token, max_bytes=config.max_request_bytes)
+    app.add_middleware(Guard, token=config.token, max_bytes=config.max_request_bytes,
+                       sessions=sessions)
     app.state.ledger, app.state.pool, app.state.config = ledger, pool, config
+    app.state.sessions = sessions
 
     @app.exception_handler(StarletteHTTPException)
     async def http_error(request, exc: StarletteHTTPException):
-        return JSONResponse({"error": str(exc.detail)}, status_code=exc.status_code)
+        return JSONResponse({"error": str(exc.detail)}, status_code=exc.status_code,
+                            headers=getattr(exc, "headers", None))
 
     @app.exception_handler(404)
     async def not_found(request, exc):
         detail = getattr(exc, "detail", None)
         if detail and detail != "Not Found":
             return JSONResponse({"error": str(detail)}, status_code=404)
-        return JSONResponse({"error": f"no route {request.method} {request.url.path} "
-                                      f"(routes: /health, /jobs, /jobs/ID, /jobs/ID/abort)"},
+        return JSONResponse({"error": f"no route {request.method} {request.url.path[:200]} "
+                                      f"(routes: /, /health, /metrics, /jobs, /jobs/ID, "
+                                      f"/jobs/ID/abort, /jobs/ID/report)"},
                             status_code=404)
 
     @app.exception_handler(RequestValidationError)
@@ -294,9 +461,15 @@ def create_app(config: ServiceConfig) -> FastAPI:
 
     @app.exception_handler(Exception)
     async def internal_error(request, exc: Exception):
-        traceback.print_exception(exc)
-        return JSONResponse({"error": f"internal error ({type(exc).__name__}: {exc}); the "
-                                      f"service log has the details"}, status_code=500)
+        rid = request.scope.get(REQUEST_ID, "-")
+        text = "".join(traceback.format_exception(exc))
+        log.error("request %s (%s %s) failed:\n%s", rid, request.method, request.url.path, text)
+        print(f"annotator: request {rid} ({request.method} {request.url.path}) failed:\n{text}",
+              file=sys.stderr, flush=True)
+        return JSONResponse({"error": f"internal error ({type(exc).__name__}); the service "
+                                      f"log has the details under request id {rid}",
+                             "request_id": rid}, status_code=500,
+                            headers={"x-request-id": rid})  # sent outside the Guard
 
     def find(ident: str):
         record = ledger.get(ident)
@@ -316,7 +489,7 @@ def create_app(config: ServiceConfig) -> FastAPI:
     async def submit(request: Request, name: str | None = None, base_dir: str | None = None):
         if name is not None and (len(name) > MAX_NAME_CHARS or not name.isprintable()):
             raise HTTPException(400, f"name: at most {MAX_NAME_CHARS} printable characters")
-        body = await _read_body(request, config.max_request_bytes)
+        body = await read_body(request, config.max_request_bytes, config.body_timeout_s)
         mapping = parse_job_body(body, request.headers.get("content-type"))
         checked = await run_in_threadpool(validate, mapping, base_dir)
         suffix = ".json" if request.headers.get("content-type", "").startswith(JSON_TYPES) \
@@ -328,12 +501,11 @@ def create_app(config: ServiceConfig) -> FastAPI:
         return JSONResponse(answer, status_code=201, headers={"Location": f"/jobs/{record.id}"})
 
     @app.get("/jobs")
-    def list_jobs(phase: str | None = None, limit: int | None = None) -> dict:
+    def list_jobs(phase: str | None = None, limit: str | None = None) -> dict:
         if phase is not None and phase.upper() not in PHASES:
             raise HTTPException(400, f"phase: {phase!r} is not one of {', '.join(PHASES)}")
-        if limit is not None and limit < 1:
-            raise HTTPException(400, "limit: expected a positive number")
-        records = ledger.list(phase=phase.upper() if phase else None, limit=limit)
+        records = ledger.list(phase=phase.upper() if phase else None,
+                              limit=parse_limit(limit))
         return {"jobs": [r.to_api() for r in records], "counts": ledger.counts()}
 
     @app.get("/jobs/{ident}")
@@ -363,17 +535,18 @@ def create_app(config: ServiceConfig) -> FastAPI:
         if not ledger.delete(record.id):
             record = find(ident)
             raise HTTPException(409, f"job {record.id} is {record.phase}; only "
-                                     f"{', '.join(FINAL)} jobs can be deleted (abort it first)")
+                                     f"{', '.join(DELETABLE)} jobs can be deleted (abort it "
+                                     f"first)")
         folder = Path(record.folder).resolve() if record.folder else None
-        removed = False
         # only ever the job's own folder, directly under the service's jobs folder
-        if folder is not None and folder.parent == config.jobs_dir.resolve() \
-                and folder.name == record.id and folder.is_dir():
-            shutil.rmtree(folder, ignore_errors=True)
-            removed = not folder.exists()
+        removed = folder is not None and folder.is_dir() and \
+            remove_job_folder(record.folder, config.jobs_dir, record.id)
         return {"id": record.id, "phase": record.phase, "deleted": True,
                 "folder": str(folder) if folder else None, "folder_removed": removed}
 
+    from .web import install
+
+    install(app, ledger=ledger, pool=pool, config=config, sessions=sessions)
     return app
 
 
@@ -399,7 +572,8 @@ def _accept(ledger: Ledger, config: ServiceConfig, checked: Submission, name: st
     """Record the job (PENDING), write its folder, then queue it."""
     record = ledger.create(name=name, job=checked.stored, base_dir=checked.base_dir,
                            notes=checked.notes, jobs_dir=config.jobs_dir,
-                           rows_total=checked.rows_total)
+                           rows_total=checked.rows_total,
+                           estimated_bytes=checked.plan.get("estimated_output_bytes"))
     try:
         folder = Path(record.folder)
         folder.mkdir(parents=True, exist_ok=False)

@@ -19,9 +19,15 @@ from pathlib import Path
 
 PENDING, QUEUED, EXECUTING = "PENDING", "QUEUED", "EXECUTING"
 COMPLETED, ERROR, ABORTED = "COMPLETED", "ERROR", "ABORTED"
-PHASES = (PENDING, QUEUED, EXECUTING, COMPLETED, ERROR, ABORTED)
+#: a finished job whose folder retention removed; its ledger entry and history remain
+ARCHIVED = "ARCHIVED"
+PHASES = (PENDING, QUEUED, EXECUTING, COMPLETED, ERROR, ABORTED, ARCHIVED)
 ACTIVE = (PENDING, QUEUED, EXECUTING)
 FINAL = (COMPLETED, ERROR, ABORTED)
+#: the phases a job can be deleted (forgotten) from
+DELETABLE = (*FINAL, ARCHIVED)
+#: service-lifetime counters kept in the ledger (never decrease, even when jobs are deleted)
+COUNTERS = ("rows_read", "rows_written", "rows_rejected", "worker_crashes", "jobs_archived")
 
 LEDGER_FILE = "ledger.sqlite"
 SCHEMA_VERSION = 1
@@ -63,7 +69,17 @@ CREATE TABLE IF NOT EXISTS events (
     message TEXT NOT NULL
 );
 CREATE INDEX IF NOT EXISTS events_by_job ON events (job_seq, n);
+CREATE TABLE IF NOT EXISTS counters (name TEXT PRIMARY KEY, value INTEGER NOT NULL);
+CREATE TABLE IF NOT EXISTS durations (
+    n INTEGER PRIMARY KEY AUTOINCREMENT,
+    phase TEXT NOT NULL,
+    seconds REAL NOT NULL
+);
 """
+
+#: columns added after the first release of schema 1 (added in place when missing)
+_ADDED_COLUMNS = {"estimated_bytes": "INTEGER", "report_path": "TEXT",
+                  "report_error": "TEXT", "waiting": "TEXT", "report_pending": "INTEGER"}
 
 
 def job_id(seq: int) -> str:
@@ -75,7 +91,9 @@ def job_seq(identifier: str) -> int | None:
     if not identifier.startswith(JOB_ID_PREFIX):
         return None
     digits = identifier[len(JOB_ID_PREFIX):]
-    return int(digits) if digits.isdigit() else None
+    # at most 18 digits: a SQLite INTEGER holds any of them (and nothing longer is an id)
+    return int(digits) if digits.isascii() and digits.isdigit() and len(digits) <= 18 \
+        else None
 
 
 def _iso(t: float | None) -> str | None:
@@ -111,6 +129,11 @@ class JobRecord:
     worker_pid: int | None
     error: str | None
     manifest_path: str | None
+    estimated_bytes: int | None = None
+    report_path: str | None = None
+    report_error: str | None = None
+    waiting: str | None = None
+    report_pending: int | None = None
 
     @classmethod
     def from_row(cls, row: sqlite3.Row) -> JobRecord:
@@ -132,6 +155,12 @@ class JobRecord:
             "eta_s": self.eta_s,
             "output": self.output_dir,
             "manifest_path": self.manifest_path,
+            "report": f"/jobs/{self.id}/report" if self.report_path else None,
+            "report_path": self.report_path,
+            "report_error": self.report_error,
+            "report_pending": bool(self.report_pending),
+            "estimated_output_bytes": self.estimated_bytes,
+            "waiting": self.waiting if self.phase == QUEUED else None,
             "error": self.error,
             "notes": list(self.notes),
             "runs": self.runs,
@@ -158,6 +187,10 @@ class Ledger:
                         (str(SCHEMA_VERSION),))
             version = con.execute("SELECT value FROM meta WHERE key = 'schema_version'"
                                   ).fetchone()[0]
+            present = {r[1] for r in con.execute("PRAGMA table_info(jobs)").fetchall()}
+            for column, kind in _ADDED_COLUMNS.items():
+                if column not in present:
+                    con.execute(f"ALTER TABLE jobs ADD COLUMN {column} {kind}")
         if int(version) != SCHEMA_VERSION:
             from ..errors import ConfigError
 
@@ -224,16 +257,17 @@ class Ledger:
 
     # -- submission ----------------------------------------------------------------------
     def create(self, *, name: str | None, job: dict, base_dir: str, notes: list[str],
-               jobs_dir: Path, rows_total: int | None = None) -> JobRecord:
+               jobs_dir: Path, rows_total: int | None = None,
+               estimated_bytes: int | None = None) -> JobRecord:
         """Insert a job in PENDING with its id and folder; :meth:`queue` once the folder exists."""
         now = time.time()
         with self._connect() as con:
             con.execute("BEGIN IMMEDIATE")
             cur = con.execute(
                 "INSERT INTO jobs (name, phase, job_json, base_dir, notes, rows_total, "
-                "submitted_at, updated_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
-                (name, PENDING, json.dumps(job), base_dir, json.dumps(notes), rows_total, now,
-                 now))
+                "estimated_bytes, submitted_at, updated_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                (name, PENDING, json.dumps(job), base_dir, json.dumps(notes), rows_total,
+                 estimated_bytes, now, now))
             seq = cur.lastrowid
             ident = job_id(seq)
             folder = Path(jobs_dir) / ident
@@ -283,19 +317,26 @@ class Ledger:
         return cur.rowcount == 1
 
     def complete(self, identifier: str, *, manifest_path: str, rows_done: int,
-                 rows_per_second: float | None, parts_done: int | None = None) -> bool:
+                 rows_per_second: float | None, parts_done: int | None = None,
+                 rows_written: int | None = None, rows_rejected: int | None = None,
+                 report_pending: bool = False) -> bool:
         now = time.time()
+        seq = job_seq(identifier)
         with self._connect() as con:
             con.execute("BEGIN IMMEDIATE")
             cur = con.execute(
                 "UPDATE jobs SET phase = ?, manifest_path = ?, rows_done = ?, "
                 "rows_total = ?, parts_done = COALESCE(?, parts_done), rows_per_second = ?, "
-                "eta_s = 0, error = NULL, finished_at = ?, updated_at = ? "
-                "WHERE seq = ? AND phase = ?",
+                "eta_s = 0, error = NULL, report_pending = ?, finished_at = ?, "
+                "updated_at = ? WHERE seq = ? AND phase = ?",
                 (COMPLETED, manifest_path, rows_done, rows_done, parts_done, rows_per_second,
-                 now, now, job_seq(identifier), EXECUTING))
+                 1 if report_pending else 0, now, now, seq, EXECUTING))
             if cur.rowcount == 1:
-                self._event(con, job_seq(identifier), COMPLETED, f"{rows_done} rows", now)
+                self._event(con, seq, COMPLETED, f"{rows_done} rows", now)
+                self._bump(con, "rows_read", rows_done)
+                self._bump(con, "rows_written", rows_written or 0)
+                self._bump(con, "rows_rejected", rows_rejected or 0)
+                self._duration(con, seq, COMPLETED, now)
         return cur.rowcount == 1
 
     def fail(self, identifier: str, error: str, *, from_phases=(EXECUTING,)) -> bool:
@@ -307,18 +348,96 @@ class Ledger:
                           assignments=", eta_s = NULL")
 
     def delete(self, identifier: str) -> bool:
-        """Forget a finished job (COMPLETED, ERROR, ABORTED) and its history; ids are never
-        reused (AUTOINCREMENT). Active jobs are refused: abort them first."""
+        """Forget a finished job (COMPLETED, ERROR, ABORTED, ARCHIVED) and its history; ids
+        are never reused (AUTOINCREMENT). Active jobs are refused: abort them first."""
         seq = job_seq(identifier)
-        marks = ",".join("?" * len(FINAL))
+        marks = ",".join("?" * len(DELETABLE))
         with self._connect() as con:
             con.execute("BEGIN IMMEDIATE")
             # the history first: events reference the job
             con.execute(f"DELETE FROM events WHERE job_seq = ? AND EXISTS (SELECT 1 FROM jobs "
-                        f"WHERE seq = ? AND phase IN ({marks}))", (seq, seq, *FINAL))
+                        f"WHERE seq = ? AND phase IN ({marks}))", (seq, seq, *DELETABLE))
             cur = con.execute(f"DELETE FROM jobs WHERE seq = ? AND phase IN ({marks})",
-                              (seq, *FINAL))
+                              (seq, *DELETABLE))
         return cur.rowcount == 1
+
+    def archive(self, identifier: str, message: str) -> bool:
+        """A finished job whose folder retention removed: ARCHIVED (from a final phase only)."""
+        moved = self._move(identifier, FINAL, ARCHIVED, message,
+                           assignments=", worker_pid = NULL, eta_s = NULL")
+        if moved:
+            with self._connect() as con:
+                self._bump(con, "jobs_archived", 1)
+        return moved
+
+    def finished(self) -> list[JobRecord]:
+        """Jobs in a final phase (their folders still exist), oldest finished first."""
+        marks = ",".join("?" * len(FINAL))
+        with self._connect() as con:
+            rows = con.execute(f"SELECT * FROM jobs WHERE id IS NOT NULL AND phase IN ({marks}) "
+                               f"ORDER BY COALESCE(finished_at, updated_at), seq",
+                               FINAL).fetchall()
+        return [JobRecord.from_row(r) for r in rows]
+
+    def peek_next(self) -> JobRecord | None:
+        """The job :meth:`claim_next` would claim, without claiming it."""
+        with self._connect() as con:
+            row = con.execute("SELECT id FROM jobs WHERE phase = ? ORDER BY seq LIMIT 1",
+                              (QUEUED,)).fetchone()
+        return self.get(row[0]) if row is not None else None
+
+    def set_waiting(self, identifier: str, reason: str | None) -> bool:
+        """Say why a QUEUED job is not started yet (None: it no longer waits); an event is
+        written when it starts waiting. True if it changed."""
+        seq = job_seq(identifier)
+        with self._connect() as con:
+            con.execute("BEGIN IMMEDIATE")
+            row = con.execute("SELECT waiting FROM jobs WHERE seq = ? AND phase = ?",
+                              (seq, QUEUED)).fetchone()
+            if row is None or row[0] == reason:
+                return False
+            con.execute("UPDATE jobs SET waiting = ?, updated_at = ? WHERE seq = ?",
+                        (reason, time.time(), seq))
+            if reason and row[0] is None:  # one event when it starts waiting, not each check
+                self._event(con, seq, QUEUED, reason, time.time())
+        return True
+
+    def set_report(self, identifier: str, report_path: str | None, error: str | None) -> None:
+        """The outcome of building a job's report (it is no longer pending)."""
+        with self._connect() as con:
+            con.execute("UPDATE jobs SET report_path = ?, report_error = ?, report_pending = 0 "
+                        "WHERE seq = ?", (report_path, error, job_seq(identifier)))
+
+    def next_report(self) -> str | None:
+        """The oldest COMPLETED job whose report is still to be built."""
+        with self._connect() as con:
+            row = con.execute("SELECT id FROM jobs WHERE phase = ? AND report_pending = 1 "
+                              "ORDER BY seq LIMIT 1", (COMPLETED,)).fetchone()
+        return row[0] if row else None
+
+    def count_crash(self) -> None:
+        with self._connect() as con:
+            self._bump(con, "worker_crashes", 1)
+
+    def totals(self) -> dict[str, int]:
+        """The service-lifetime counters (:data:`COUNTERS`), 0 for those never bumped."""
+        with self._connect() as con:
+            rows = con.execute("SELECT name, value FROM counters").fetchall()
+        out = {name: 0 for name in COUNTERS}
+        out.update({r[0]: r[1] for r in rows})
+        return out
+
+    def durations(self) -> list[tuple[str, float]]:
+        """(final phase, seconds from first start to the end) of every job that ended."""
+        with self._connect() as con:
+            rows = con.execute("SELECT phase, seconds FROM durations ORDER BY n").fetchall()
+        return [(r[0], r[1]) for r in rows]
+
+    def oldest_queued_at(self) -> float | None:
+        with self._connect() as con:
+            row = con.execute("SELECT MIN(submitted_at) FROM jobs WHERE phase = ?",
+                              (QUEUED,)).fetchone()
+        return row[0] if row else None
 
     def requeue(self, identifier: str, message: str, *, crashed: bool = False) -> bool:
         """Put an EXECUTING job back in the queue, keeping its place (submission order)."""
@@ -332,6 +451,8 @@ class Ledger:
                 (QUEUED, 1 if crashed else 0, now, seq, EXECUTING))
             if cur.rowcount == 1:
                 self._event(con, seq, QUEUED, message, now)
+                if crashed:
+                    self._bump(con, "worker_crashes", 1)
         return cur.rowcount == 1
 
     def note(self, identifier: str, phase: str, message: str) -> None:
@@ -356,7 +477,23 @@ class Ledger:
                               (target, *values, now, seq, *sources))
             if cur.rowcount == 1:
                 self._event(con, seq, target, message, now)
+                if finished:
+                    self._duration(con, seq, target, now)
         return cur.rowcount == 1
+
+    @staticmethod
+    def _bump(con, name: str, by: int) -> None:
+        con.execute("INSERT INTO counters (name, value) VALUES (?, ?) ON CONFLICT (name) DO "
+                    "UPDATE SET value = value + excluded.value", (name, int(by)))
+
+    @staticmethod
+    def _duration(con, seq: int, phase: str, now: float) -> None:
+        """Record how long a job that just ended took (from its first start; 0 if never
+        started)."""
+        row = con.execute("SELECT started_at FROM jobs WHERE seq = ?", (seq,)).fetchone()
+        started = row[0] if row and row[0] is not None else now
+        con.execute("INSERT INTO durations (phase, seconds) VALUES (?, ?)",
+                    (phase, max(now - started, 0.0)))
 
     @staticmethod
     def _event(con, seq: int, phase: str, message: str, at: float) -> None:

@@ -18,10 +18,10 @@ import socket
 from collections.abc import Sequence
 from pathlib import Path
 
-from ..errors import ConfigError, UserError
+from ..errors import ConfigError, PathRefusedError
 
 
-class AccessError(UserError):
+class AccessError(PathRefusedError):
     """A job names a file or folder the service may not read or write (HTTP 403)."""
 
 
@@ -126,3 +126,62 @@ def token_matches(header: str | None, token: str) -> bool:
     if scheme.lower() != "bearer":
         return False
     return hmac.compare_digest(given.strip().encode("utf-8"), token.encode("utf-8"))
+
+
+# -- the status page's sessions --------------------------------------------------------------
+
+SESSION_COOKIE = "annotator_session"
+SESSION_LIFETIME_S = 12 * 3600
+
+
+class Sessions:
+    """Sessions of the status page, kept in memory (a restart signs everybody out).
+
+    A session id is 32 random bytes; it is only ever sent in an ``HttpOnly; SameSite=Strict``
+    cookie. Its CSRF token is an HMAC of the id under a secret drawn at start, so a page of
+    another site can neither read nor forge it. On a service without a token every visitor's
+    session counts as signed in (loopback only), and the CSRF token still guards every form.
+    """
+
+    def __init__(self, *, open_service: bool, lifetime_s: float = SESSION_LIFETIME_S):
+        import secrets
+        import threading
+
+        self.open_service = open_service
+        self.lifetime_s = lifetime_s
+        self._secret = secrets.token_bytes(32)
+        self._expiry: dict[str, float] = {}
+        self._lock = threading.Lock()
+
+    def create(self) -> str:
+        import secrets
+        import time
+
+        sid = secrets.token_urlsafe(32)
+        with self._lock:
+            now = time.time()
+            for old in [s for s, t in self._expiry.items() if t < now]:
+                del self._expiry[old]
+            self._expiry[sid] = now + self.lifetime_s
+        return sid
+
+    def signed_in(self, sid: str | None) -> bool:
+        import time
+
+        if not sid:
+            return False
+        with self._lock:
+            expiry = self._expiry.get(sid)
+        return expiry is not None and expiry > time.time()
+
+    def end(self, sid: str | None) -> None:
+        with self._lock:
+            self._expiry.pop(sid or "", None)
+
+    def csrf(self, sid: str) -> str:
+        return hmac.new(self._secret, sid.encode(), "sha256").hexdigest()
+
+    def csrf_matches(self, sid: str | None, given: str | None) -> bool:
+        if not sid or not given or not self.signed_in(sid):
+            return False
+        return hmac.compare_digest(self.csrf(sid), given)

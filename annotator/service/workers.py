@@ -37,10 +37,15 @@ import traceback
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from .ledger import EXECUTING, PENDING, Ledger
+from .ledger import EXECUTING, PENDING, QUEUED, Ledger
 
 LOCK_FILE = "worker.lock"
 LOG_FILE = "worker.log"
+REPORT_FILE = "report.html"
+#: how often the scheduler applies retention (it also does at start)
+SWEEP_INTERVAL_S = 60.0
+#: how often the free space is looked at again while the next job waits for it
+DISK_RECHECK_S = 5.0
 PROGRESS_INTERVAL_S = 0.5
 #: imported once by the fork server (see :mod:`.preload`), inherited by every worker
 PRELOAD = ["annotator.service.preload"]
@@ -144,12 +149,16 @@ def _redirect_output(folder: Path) -> None:
     sys.stdout = sys.stderr = log
 
 
-def run_worker(root: str, ident: str, data_roots: list[str]) -> None:
+def run_worker(root: str, ident: str, data_roots: list[str], umask: int = 0o077,
+               report: bool = True) -> None:
     """Entry point of a worker process: run one job to COMPLETED or ERROR.
 
     Exits 0 once the outcome is in the ledger; any other ending (a signal, a crash of the
     interpreter) means the job is still EXECUTING and the scheduler decides what comes next.
     """
+    # what this process writes (output parts, manifest, log, report) is as private as the
+    # service's own files; set here, not inherited, since the fork server started earlier
+    os.umask(umask)
     _exit_with_parent()
     signal.signal(signal.SIGINT, signal.SIG_IGN)  # Ctrl-C on the service's terminal
     # A polite stop (systemd sends SIGTERM to every process of the service) ends the worker at
@@ -169,7 +178,7 @@ def run_worker(root: str, ident: str, data_roots: list[str]) -> None:
         ledger.set_worker(ident, os.getpid())
         print(f"{time.ctime()}: {ident}: worker {os.getpid()} starts run {record.runs}",
               flush=True)
-        outcome = execute(ledger, record, [Path(r) for r in data_roots])
+        outcome = execute(ledger, record, [Path(r) for r in data_roots], report=report)
         usage = resource.getrusage(resource.RUSAGE_SELF)
         print(f"{time.ctime()}: {ident}: {outcome} (CPU {usage.ru_utime + usage.ru_stime:.2f} s, "
               f"peak memory {usage.ru_maxrss / 1024:.0f} MiB)", flush=True)
@@ -178,7 +187,7 @@ def run_worker(root: str, ident: str, data_roots: list[str]) -> None:
         ledger.close()
 
 
-def execute(ledger: Ledger, record, data_roots: list[Path]) -> str:
+def execute(ledger: Ledger, record, data_roots: list[Path], *, report: bool = True) -> str:
     """Run the job of ``record`` (resuming its committed parts) and record the outcome."""
     from ..errors import UserError
     from ..io.checkpoint import CheckpointLog
@@ -211,8 +220,57 @@ def execute(ledger: Ledger, record, data_roots: list[Path]) -> str:
     rate = progress.rate(manifest["rows_read"]) or manifest.get("rows_per_second")
     ledger.complete(ident, manifest_path=str(Path(job.output_dir) / MANIFEST),
                     rows_done=manifest["rows_read"], rows_per_second=rate,
-                    parts_done=len(manifest.get("parts", [])) or None)
+                    parts_done=len(manifest.get("parts", [])) or None,
+                    rows_written=manifest.get("rows_written"),
+                    rows_rejected=manifest.get("rows_rejected"), report_pending=report)
     return f"COMPLETED: {manifest['rows_read']} rows"
+
+
+def build_job_report(output_dir: str | Path, folder: Path) -> tuple[str | None, str | None]:
+    """The HTML report of a finished output (the code of ``annotator report``), written to
+    ``folder/report.html``: (its path, None), or (None, why not). Never raises: a report that
+    cannot be built does not fail the job."""
+    target = Path(folder) / REPORT_FILE
+    try:
+        from ..report import build_report
+
+        build_report(output_dir, target)
+        return str(target), None
+    except Exception as exc:  # noqa: BLE001 - any failure is reported, never fatal
+        traceback.print_exc()
+        target.unlink(missing_ok=True)
+        return None, f"{type(exc).__name__}: {exc}"
+
+
+def run_report(root: str, ident: str, umask: int = 0o077) -> None:
+    """Entry point of a report process: build the report of one COMPLETED job.
+
+    A job is COMPLETED as soon as its manifest is written; its report is built afterwards, in
+    a process of its own at low priority, one at a time, so reports never hold up jobs or
+    occupy a worker slot. The outcome is written into the ledger either way.
+    """
+    os.umask(umask)
+    _exit_with_parent()
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+    try:
+        os.nice(10)
+    except OSError:
+        pass
+    ledger = Ledger(root)
+    try:
+        record = ledger.get(ident)
+        if record is None or not record.manifest_path:
+            return
+        folder = Path(record.folder)
+        _redirect_output(folder)
+        t0 = time.perf_counter()
+        path, error = build_job_report(Path(record.manifest_path).parent, folder)
+        ledger.set_report(ident, path, error)
+        print(f"{time.ctime()}: {ident}: report "
+              f"{'written to ' + path if path else 'not built: ' + str(error)} "
+              f"({time.perf_counter() - t0:.1f} s)", flush=True)
+    finally:
+        ledger.close()
 
 
 # ---------------------------------------------------------------------------------------
@@ -231,8 +289,17 @@ class WorkerPool:
     """The scheduler: runs QUEUED jobs in submission order, ``workers`` at a time."""
 
     def __init__(self, ledger: Ledger, data_roots: list[Path], *, workers: int = 1,
-                 max_crashes: int = 3, poll_s: float = 0.2):
+                 max_crashes: int = 3, poll_s: float = 0.2, umask: int = 0o077,
+                 retention=None, disk_guard=None, reports: bool = True):
         self.ledger = ledger
+        self.umask = umask
+        self.retention = retention
+        self.disk_guard = disk_guard
+        self.reports = reports
+        self.reporting: dict[str, multiprocessing.process.BaseProcess] = {}
+        self._last_sweep = 0.0
+        self._waiting_since: dict[str, float] = {}
+        self._disk_checked = 0.0
         self.data_roots = [str(r) for r in data_roots]
         self.workers = workers
         self.max_crashes = max_crashes
@@ -265,6 +332,10 @@ class WorkerPool:
         with self._lock:
             for run in list(self.running.values()):
                 run.process.kill()
+            for process in list(self.reporting.values()):  # resumed at the next start
+                process.kill()
+                process.join(timeout_s)
+            self.reporting.clear()
             requeued = 0
             for ident, run in list(self.running.items()):
                 run.process.join(timeout_s)
@@ -326,10 +397,13 @@ class WorkerPool:
                     self._reap()
                     self._enforce_aborts()
                     self._start_next()
+                    self._reports()
+                self._sweep()
             except Exception:  # the scheduler must outlive any one bad job
                 traceback.print_exc()
             with self._lock:
                 sentinels = [run.process.sentinel for run in self.running.values()]
+                sentinels += [p.sentinel for p in self.reporting.values()]
             ready = multiprocessing.connection.wait([self._wake_r, *sentinels], self.poll_s)
             if self._wake_r in ready:
                 os.read(self._wake_r, 4096)
@@ -342,13 +416,82 @@ class WorkerPool:
         except Exception:
             traceback.print_exc()
 
+    def _reports(self) -> None:
+        """Reap the report process, and start the next one (one at a time)."""
+        for ident, process in list(self.reporting.items()):
+            if process.exitcode is None:
+                continue
+            process.join()
+            del self.reporting[ident]
+            self._last_sweep = 0.0
+            if process.exitcode != 0:
+                self.ledger.set_report(ident, None, f"the report process ended "
+                                       f"({signal_name(process.exitcode)})")
+            process.close()
+        if self.reporting or not self.reports or self._stop.is_set():
+            return
+        ident = self.ledger.next_report()
+        if ident is None:
+            return
+        process = self.context.Process(target=run_report,
+                                       args=(str(self.ledger.root), ident, self.umask),
+                                       name=f"annotator-report-{ident}", daemon=False)
+        try:
+            process.start()
+        except Exception as exc:
+            self.ledger.set_report(ident, None, f"could not start a report process: {exc}")
+            return
+        self.reporting[ident] = process
+
+    def _sweep(self) -> None:
+        """Retention, at start and then every SWEEP_INTERVAL_S."""
+        if self.retention is None or not self.retention.active:
+            return
+        now = time.monotonic()
+        if self._last_sweep and now - self._last_sweep < SWEEP_INTERVAL_S:
+            return
+        self._last_sweep = now
+        for ident in self.retention.sweep(self.ledger):
+            print(f"annotator: {ident} archived (retention)", file=sys.stderr, flush=True)
+
+    def _fits_on_disk(self) -> bool:
+        """Whether the next queued job may start as far as the disk goes; a job that may
+        never start is ended here (ERROR, saying why)."""
+        while self.disk_guard is not None:
+            record = self.ledger.peek_next()
+            if record is None:
+                self._waiting_since = {}
+                return True
+            # only the head of the queue waits (jobs start in submission order)
+            now = time.monotonic()
+            since = self._waiting_since.get(record.id, now)
+            self._waiting_since = {record.id: since}
+            if record.waiting and now - self._disk_checked < DISK_RECHECK_S:
+                return False  # it waits; the free space is looked at again every few seconds
+            self._disk_checked = now
+            verdict, reason = self.disk_guard.verdict(record.estimated_bytes, now - since)
+            if verdict == "start":
+                self._waiting_since.pop(record.id, None)
+                if record.waiting:
+                    self.ledger.set_waiting(record.id, None)
+                return True
+            if verdict == "wait":
+                self.ledger.set_waiting(record.id, reason)
+                return False
+            self._waiting_since.pop(record.id, None)
+            self.ledger.fail(record.id, f"not started: {reason}", from_phases=(QUEUED,))
+        return True
+
     def _start_next(self) -> None:
         while len(self.running) < self.workers and not self._stop.is_set():
+            if not self._fits_on_disk():
+                return
             record = self.ledger.claim_next()
             if record is None:
                 return
             process = self.context.Process(
-                target=run_worker, args=(str(self.ledger.root), record.id, self.data_roots),
+                target=run_worker, args=(str(self.ledger.root), record.id, self.data_roots,
+                                         self.umask, self.reports),
                 name=f"annotator-worker-{record.id}", daemon=False)
             try:
                 Path(record.folder).mkdir(parents=True, exist_ok=True)
@@ -374,6 +517,7 @@ class WorkerPool:
             run.process.join()
             del self.running[ident]
             run.process.close()
+            self._last_sweep = 0.0  # a job ended: retention looks again at once
             record = self.ledger.get(ident)
             if record is None or record.phase != EXECUTING:
                 continue  # it reported its outcome, or was aborted
@@ -390,6 +534,7 @@ class WorkerPool:
         crashes = record.crashes + 1
         log = Path(record.folder) / LOG_FILE
         if crashes >= self.max_crashes:
+            self.ledger.count_crash()
             self.ledger.fail(record.id, f"the worker process ended without finishing "
                              f"({how}) {crashes} times; last at {record.rows_done} rows; "
                              f"see {log}")
@@ -401,7 +546,9 @@ class WorkerPool:
     def status(self) -> dict:
         with self._lock:
             running = {ident: run.process.pid for ident, run in self.running.items()}
-        return {"workers": self.workers, "running": running,
+            reporting = sorted(self.reporting)
+        return {"workers": self.workers, "running": running, "building_reports": reporting,
+                "queue_waiting_for_disk": bool(self._waiting_since),
                 "scheduler_alive": bool(self._thread and self._thread.is_alive())}
 
 

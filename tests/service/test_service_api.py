@@ -86,8 +86,10 @@ TOKEN = "test-token-" + "q" * 24
 def shared(data, tmp_path_factory):
     """One service for every test that does not kill the service itself: two workers, and a
     token (so every request these tests make also proves the token is accepted)."""
+    # --no-reports: fifty jobs' HTML reports would cost minutes of CPU here; the reports are
+    # tested in test_service_operations.py
     service = Service(tmp_path_factory.mktemp("shared") / "root", [data], workers=2,
-                      token=TOKEN).start()
+                      token=TOKEN, extra=("--no-reports",)).start()
     yield service
     service.kill()
 
