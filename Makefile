@@ -30,7 +30,7 @@ test-browser: venv-test
 	command -v chromium >/dev/null && command -v chromedriver >/dev/null || \
 		apt-get install -y chromium chromium-driver
 	$(BIN)/python -m pip install --quiet -e '.[browser]'
-	$(BIN)/python -m pytest -q -m browser
+	ANNOTATOR_UPDATE_SCREENSHOTS=1 $(BIN)/python -m pytest -q -m browser
 
 bench: venv-test
 	$(BIN)/python benchmarks/run_all.py
