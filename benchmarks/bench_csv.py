@@ -31,6 +31,7 @@ import sys
 from pathlib import Path
 
 from _common import DATA, OUT, annotator_cmd, synthetic_catalogue
+from _common import measured as common_measured
 
 FLOOR = ("import sys, pyarrow.csv as c\n"
          "n = 0\n"
@@ -42,21 +43,9 @@ PASS_THROUGH_TYPES = {"objid": "int64", "ra": "float64", "dec": "float64",
 
 
 def measured(cmd: list[str]) -> tuple[float, float, float]:
-    """(wall s, CPU s, peak RSS MiB) of one child process."""
-    wrapper = [sys.executable, "-c",
-               "import resource, subprocess, sys, time;"
-               "t = time.perf_counter();"
-               "r = subprocess.run(sys.argv[1:]);"
-               "dt = time.perf_counter() - t;"
-               "u = resource.getrusage(resource.RUSAGE_CHILDREN);"
-               "print(f'@@ {dt} {u.ru_utime + u.ru_stime} {u.ru_maxrss}', file=sys.stderr);"
-               "sys.exit(r.returncode)", *cmd]
-    proc = subprocess.run(wrapper, capture_output=True, text=True)
-    if proc.returncode != 0:
-        raise RuntimeError(f"{' '.join(cmd)} failed:\n{proc.stderr[-2000:]}")
-    line = [ln for ln in proc.stderr.splitlines() if ln.startswith("@@ ")][-1]
-    _, wall, cpu, peak = line.split()
-    return float(wall), float(cpu), float(peak) / 1024.0
+    """(wall s, CPU s, peak RSS MiB) of one child process (benchmarks/_common.measured)."""
+    wall, peak, cpu = common_measured(cmd, cpu=True)
+    return wall, cpu, peak
 
 
 OLD_TREE_MAIN = ("import importlib.util, sys\n"

@@ -140,3 +140,16 @@ class Service:
         if self.token:
             cmd += ["--token", self.token]
         return subprocess.run(cmd, capture_output=True, text=True, timeout=120)
+
+
+def corrupt_parquet(good: Path, bad: Path) -> None:
+    """A Parquet file whose footer reads (so the plan passes) but whose second row group's
+    page headers are garbage (so reading its rows fails mid-job)."""
+    import pyarrow.parquet as pq
+
+    data = bytearray(good.read_bytes())
+    meta = pq.ParquetFile(good).metadata
+    for c in range(meta.num_columns):
+        start = meta.row_group(1).column(c).data_page_offset
+        data[start:start + 24] = b"\xff" * 24
+    bad.write_bytes(bytes(data))

@@ -21,7 +21,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 from catalogue_factory import make_catalogue
-from service_harness import Service, alive, wait_until
+from service_harness import Service, alive, corrupt_parquet, wait_until
 
 from annotator.cli import main as cli_main
 from annotator.config import load_job
@@ -45,17 +45,6 @@ def read_output(folder: str | Path) -> pa.Table:
     parts = sorted(Path(folder).glob("*.parquet"))
     table = pa.concat_tables([pq.read_table(p) for p in parts])
     return table.sort_by("objid")
-
-
-def corrupt_parquet(good: Path, bad: Path) -> None:
-    """A Parquet file whose footer reads (so the plan passes) but whose second row group's
-    page headers are garbage (so reading its rows fails mid-job)."""
-    data = bytearray(good.read_bytes())
-    meta = pq.ParquetFile(good).metadata
-    for c in range(meta.num_columns):
-        start = meta.row_group(1).column(c).data_page_offset
-        data[start:start + 24] = b"\xff" * 24
-    bad.write_bytes(bytes(data))
 
 
 @pytest.fixture(scope="module")

@@ -21,7 +21,7 @@ import pyarrow.parquet as pq
 import pytest
 from browser_driver import browser, missing, save_screenshot, visible_text, wait_for
 from catalogue_factory import make_catalogue
-from service_harness import Service
+from service_harness import Service, corrupt_parquet
 
 pytestmark = [pytest.mark.browser,
               pytest.mark.skipif(missing() is not None, reason=str(missing()))]
@@ -44,17 +44,6 @@ def job_toml(path: Path, chunk_rows: int = 1_000) -> str:
             f'[cosmology]\npreset = "planck2018"\n')
 
 
-def corrupt_copy(good: Path, bad: Path) -> None:
-    """A Parquet file whose footer reads (the job is accepted) but whose second row group's
-    pages are garbage (the job ends in ERROR while running)."""
-    data = bytearray(good.read_bytes())
-    meta = pq.ParquetFile(good).metadata
-    for c in range(meta.num_columns):
-        start = meta.row_group(1).column(c).data_page_offset
-        data[start:start + 24] = b"\xff" * 24
-    bad.write_bytes(bytes(data))
-
-
 @pytest.fixture(scope="module")
 def survey(tmp_path_factory):
     root = tmp_path_factory.mktemp("quillfield")
@@ -62,7 +51,7 @@ def survey(tmp_path_factory):
                    row_group_size=1_000)
     pq.write_table(make_catalogue(900_000, seed=42), root / "qds-deep-field-cyan.parquet")
     pq.write_table(make_catalogue(3_000, seed=43), root / "qds-night-0413-amber.parquet")
-    corrupt_copy(root / "qds-night-0412-violet.parquet", root / "qds-night-0411-crimson.parquet")
+    corrupt_parquet(root / "qds-night-0412-violet.parquet", root / "qds-night-0411-crimson.parquet")
     return root
 
 
