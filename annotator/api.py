@@ -45,7 +45,7 @@ class Annotator:
     * ``input_hints``: for a logical input, catalogue column names to try when unmapped.
     * ``enabled_by_default``: whether it runs when the job file does not mention it.
     * ``position``: tie-break for the order of annotators (and so of output columns) when
-      their inputs do not decide it; built-ins use 10-90, third parties default to 100.
+      their inputs do not decide it; built-ins use 2-55, third parties default to 100.
 
     Instance attributes (set by ``configure``):
 

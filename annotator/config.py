@@ -66,7 +66,7 @@ class Job:
 
     :ivar inputs: catalogue files or folders, absolute.
     :ivar output_dir: where part files, manifest and rejected rows go.
-    :ivar input_format: ``auto`` (by extension), ``parquet`` or ``csv``.
+    :ivar input_format: ``auto`` (by extension), ``parquet``, ``csv`` or ``fits``.
     :ivar delimiter: CSV field delimiter.
     :ivar column_types: CSV column type overrides, ``{column: arrow type name}``.
     :ivar hdu: FITS only: the table HDU, by number (0 = primary) or EXTNAME; ``None`` = the
