@@ -21,7 +21,6 @@ import os
 import re
 import shutil
 import tempfile
-import threading
 from collections.abc import Iterable, Mapping
 from pathlib import Path
 
@@ -91,6 +90,32 @@ def _only_read_nodes(select_text: str) -> None:
         what = ", ".join(w.replace("_QUERY_NODE", "").replace("_NODE", "") for w in writing)
         raise QueryError(f"SQL: the statement contains {what}: queries are read-only (write a "
                          f"result with --to FILE instead)")
+
+
+def _names_in(obj, key: str, found: set) -> set:
+    if isinstance(obj, dict):
+        value = obj.get(key)
+        if isinstance(value, str):
+            found.add(value.lower())
+        for v in obj.values():
+            _names_in(v, key, found)
+    elif isinstance(obj, list):
+        for v in obj:
+            _names_in(v, key, found)
+    return found
+
+
+def functions_and_tables(select_text: str) -> tuple[set[str], set[str]]:
+    """The function names and table names a (checked) statement's syntax tree mentions."""
+    checker = duckdb.connect(":memory:")
+    try:
+        tree = json.loads(checker.execute("SELECT json_serialize_sql(?)",
+                                          [select_text]).fetchone()[0])
+    except duckdb.Error:
+        return set(), set()
+    finally:
+        checker.close()
+    return _names_in(tree, "function_name", set()), _names_in(tree, "table_name", set())
 
 
 def read_only_statement(sql: str) -> tuple[str, str]:
@@ -203,16 +228,7 @@ def _to_arrow(data: np.ndarray, null: np.ndarray | None, boolean: bool) -> pa.Ar
     return pa.Array.from_buffers(typ, n, [_bitmap(~null), values], null_count=int(null.sum()))
 
 
-# DuckDB calls a Python function from each of its threads, one vector (2 048 rows) at a time.
-# The interpreter lock lets only one run at once anyway, but without this lock two calls
-# interleave: every numpy operation inside releases and re-takes the interpreter lock, and the
-# two threads hand it back and forth (measured: 2 threads ran the SQL functions at about half
-# the speed of 1). Holding this lock for a whole call keeps the other DuckDB thread waiting
-# outside Python, free to scan and decode Parquet; benchmarks/bench_sql.py measures both.
-_ONE_PYTHON_CALL_AT_A_TIME = threading.Lock()
-
-
-def arrow_udf(fn: SqlFunction, *, one_call_at_a_time: bool = True):
+def arrow_udf(fn: SqlFunction):
     """Wrap a numpy function as a DuckDB Arrow UDF (one call per vector of rows).
 
     NULL out where the function returns NaN (or masks the value); a boolean result is also
@@ -221,12 +237,6 @@ def arrow_udf(fn: SqlFunction, *, one_call_at_a_time: bool = True):
     boolean = fn.return_type.upper() == "BOOLEAN"
 
     def udf(*cols):
-        if not one_call_at_a_time:  # only for benchmarks/bench_sql.py's comparison
-            return evaluate(cols)
-        with _ONE_PYTHON_CALL_AT_A_TIME:
-            return evaluate(cols)
-
-    def evaluate(cols):
         args = [_as_float(c) for c in cols]
         n = len(args[0]) if args else 1
         with np.errstate(all="ignore"):
@@ -361,23 +371,55 @@ class QuerySession:
         self.functions = collect_sql_functions(self.pm, self.output.cosmology)
         self.selections = collect_selections(self.pm, self.output.manifest)
         self._tmpdir = tempfile.mkdtemp(prefix="annotator-sql-")
+        self._folders = folders
+        self._selection_text: str | None = None
+        self._serial = None
         self.con = duckdb.connect(":memory:")
         try:
-            self._build(folders)
+            self._build(self.con)
         except BaseException:
             self.close()
             raise
 
     # ------------------------------------------------------------------ setup
-    def _build(self, folders: list[Path]) -> None:
-        con = self.con
+    def _connection_for(self, text: str):
+        """The DuckDB instance to run ``text`` on.
+
+        A statement that calls one of the Python SQL functions (directly, or through the
+        ``selection`` view) runs on a second, identical instance limited to one thread: DuckDB
+        would call the function from every thread, and the interpreter lock makes those calls
+        take turns at a high cost (measured by benchmarks/bench_sql.py: 36 M rows/s with one
+        thread against 11-14 M with two). Every other statement keeps all threads.
+        """
+        functions, tables = functions_and_tables(text)
+        python = set(self.functions)
+        calls = bool(functions & python)
+        if not calls and SELECTION_VIEW in tables and self._selection_text is not None:
+            calls = bool(functions_and_tables(self._selection_text)[0] & python)
+        if not calls:
+            return self.con
+        if self._serial is None:
+            serial = duckdb.connect(":memory:", config={"threads": 1})
+            try:
+                self._build(serial)
+                if self._selection_text is not None:
+                    serial.execute(f"CREATE OR REPLACE VIEW {SELECTION_VIEW} AS\n"
+                                   f"{self._selection_text}\n")
+            except BaseException:
+                serial.close()
+                raise
+            self._serial = serial
+        return self._serial
+
+    def _build(self, con) -> None:
+        folders = self._folders
         con.execute(f"SET temp_directory = {_literal(self._tmpdir)}")
         con.execute("SET autoinstall_known_extensions = false")
         con.execute("SET autoload_known_extensions = false")
-        self._views("main", self.output)
+        self._views(con, "main", self.output)
         for name, out in self.attached.items():
             con.execute(f"CREATE SCHEMA {quote_identifier(name)}")
-            self._views(name, out)
+            self._views(con, name, out)
         for fn, plugin in self.functions.values():
             try:
                 con.create_function(fn.name, arrow_udf(fn), [t for _, t in fn.parameters],
@@ -398,8 +440,7 @@ class QuerySession:
         con.execute("SET enable_external_access = false")
         con.execute("SET lock_configuration = true")
 
-    def _views(self, schema: str, out: OutputFolder) -> None:
-        con = self.con
+    def _views(self, con, schema: str, out: OutputFolder) -> None:
         q = quote_identifier(schema)
         con.execute(f"CREATE VIEW {q}.catalogue AS SELECT * FROM read_parquet("
                     f"{_path_list(out.parts)})")
@@ -425,9 +466,12 @@ class QuerySession:
         if kind != "SELECT":
             raise PluginError(f"selection {name!r} is not a SELECT")
         try:
-            self.con.execute(f"CREATE OR REPLACE VIEW {SELECTION_VIEW} AS\n{text}\n")
+            for con in (self.con, self._serial):
+                if con is not None:
+                    con.execute(f"CREATE OR REPLACE VIEW {SELECTION_VIEW} AS\n{text}\n")
         except duckdb.Error as exc:
             raise query_error(exc, f"selection {name!r}") from None
+        self._selection_text = text
         return text
 
     # ------------------------------------------------------------------ queries
@@ -435,7 +479,7 @@ class QuerySession:
         """The (lazy) DuckDB relation of a checked, read-only statement."""
         text, _ = read_only_statement(sql)
         try:
-            return self.con.sql(text)
+            return self._connection_for(text).sql(text)
         except duckdb.Error as exc:
             raise query_error(exc) from None
 
@@ -470,8 +514,9 @@ class QuerySession:
         tmp.unlink(missing_ok=True)
         try:
             if fmt == "parquet":
-                rows = self.con.execute(f"COPY (\n{text}\n) TO {_literal(str(tmp))} "
-                                        f"({COPY_OPTIONS[fmt]})").fetchone()
+                rows = self._connection_for(text).execute(
+                    f"COPY (\n{text}\n) TO {_literal(str(tmp))} ({COPY_OPTIONS[fmt]})"
+                ).fetchone()
                 rows = int(rows[0]) if rows else 0
             else:
                 rows = self._write_streamed(text, fmt, tmp)
@@ -502,10 +547,12 @@ class QuerySession:
 
     # ------------------------------------------------------------------ lifetime
     def close(self) -> None:
-        try:
-            self.con.close()
-        except Exception:  # pragma: no cover - closing twice
-            pass
+        for con in (self.con, getattr(self, "_serial", None)):
+            try:
+                if con is not None:
+                    con.close()
+            except Exception:  # pragma: no cover - closing twice
+                pass
         if self._tmp_target is not None:
             self._tmp_target.unlink(missing_ok=True)
         shutil.rmtree(self._tmpdir, ignore_errors=True)
