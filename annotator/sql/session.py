@@ -71,16 +71,22 @@ def _node_types(obj, found: set) -> set:
     return found
 
 
-def _only_read_nodes(select_text: str) -> None:
-    """Refuse a SELECT whose syntax tree holds a writing node (COPY/INSERT/... in a CTE)."""
+def _syntax_tree(select_text: str) -> dict:
+    """DuckDB's syntax tree of a statement (``json_serialize_sql``), on a throwaway instance."""
     checker = duckdb.connect(":memory:")
     try:
-        raw = checker.execute("SELECT json_serialize_sql(?)", [select_text]).fetchone()[0]
-    except duckdb.Error as exc:
-        raise QueryError(f"SQL: cannot check that the statement only reads: {query_error(exc)}")
+        return json.loads(checker.execute("SELECT json_serialize_sql(?)",
+                                          [select_text]).fetchone()[0])
     finally:
         checker.close()
-    tree = json.loads(raw)
+
+
+def _only_read_nodes(select_text: str) -> None:
+    """Refuse a SELECT whose syntax tree holds a writing node (COPY/INSERT/... in a CTE)."""
+    try:
+        tree = _syntax_tree(select_text)
+    except duckdb.Error as exc:
+        raise QueryError(f"SQL: cannot check that the statement only reads: {query_error(exc)}")
     if tree.get("error"):
         raise QueryError(f"SQL: cannot check that the statement only reads "
                          f"({tree.get('error_message', 'unknown reason')}); rewrite it as a "
@@ -107,14 +113,10 @@ def _names_in(obj, key: str, found: set) -> set:
 
 def functions_and_tables(select_text: str) -> tuple[set[str], set[str]]:
     """The function names and table names a (checked) statement's syntax tree mentions."""
-    checker = duckdb.connect(":memory:")
     try:
-        tree = json.loads(checker.execute("SELECT json_serialize_sql(?)",
-                                          [select_text]).fetchone()[0])
+        tree = _syntax_tree(select_text)
     except duckdb.Error:
         return set(), set()
-    finally:
-        checker.close()
     return _names_in(tree, "function_name", set()), _names_in(tree, "table_name", set())
 
 

@@ -153,3 +153,9 @@ def corrupt_parquet(good: Path, bad: Path) -> None:
         start = meta.row_group(1).column(c).data_page_offset
         data[start:start + 24] = b"\xff" * 24
     bad.write_bytes(bytes(data))
+
+
+def job_toml(path, chunk_rows: int = 1_000) -> str:
+    """A minimal job file for one input, in the service's default output folder."""
+    return (f'[input]\npaths = ["{path}"]\n\n[output]\nchunk_rows = {chunk_rows}\n\n'
+            f'[cosmology]\npreset = "planck2018"\n')

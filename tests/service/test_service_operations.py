@@ -18,18 +18,13 @@ import httpx
 import pyarrow.parquet as pq
 import pytest
 from catalogue_factory import make_catalogue
-from service_harness import Service, wait_until
+from service_harness import Service, job_toml, wait_until
 
 from annotator.service.housekeeping import DiskGuard, Retention
 from annotator.service.ledger import ARCHIVED, COMPLETED, Ledger
 
 TOKEN = "ops-token-" + "k" * 24
 ROWS = 3_000
-
-
-def job_toml(path: str, chunk_rows: int = 1_000) -> str:
-    return (f'[input]\npaths = ["{path}"]\n\n[output]\nchunk_rows = {chunk_rows}\n\n'
-            f'[cosmology]\npreset = "planck2018"\n')
 
 
 @pytest.fixture(scope="module")

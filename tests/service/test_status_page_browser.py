@@ -21,7 +21,7 @@ import pyarrow.parquet as pq
 import pytest
 from browser_driver import browser, missing, save_screenshot, visible_text, wait_for
 from catalogue_factory import make_catalogue
-from service_harness import Service, corrupt_parquet
+from service_harness import Service, corrupt_parquet, job_toml
 
 pytestmark = [pytest.mark.browser,
               pytest.mark.skipif(missing() is not None, reason=str(missing()))]
@@ -37,11 +37,6 @@ def screenshot_path(tmp_path: Path) -> Path:
 
     return DOCS_SCREENSHOT if os.environ.get("ANNOTATOR_UPDATE_SCREENSHOTS") else \
         tmp_path / "status-page.png"
-
-
-def job_toml(path: Path, chunk_rows: int = 1_000) -> str:
-    return (f'[input]\npaths = ["{path}"]\n\n[output]\nchunk_rows = {chunk_rows}\n\n'
-            f'[cosmology]\npreset = "planck2018"\n')
 
 
 @pytest.fixture(scope="module")
