@@ -187,8 +187,8 @@ def _list_column_check(setup, key, col):
 def list_parts(arr, delimiter: str) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Flattened float64 values, int64 offsets (rows + 1), null mask and unreadable mask of a
     list<number> column, or of a text column holding ``delimiter``-separated numbers."""
-    if isinstance(arr, pa.ChunkedArray):
-        arr = arr.combine_chunks()
+    if isinstance(arr, pa.ChunkedArray):  # one chunk (the usual batch): no copy
+        arr = arr.chunk(0) if arr.num_chunks == 1 else arr.combine_chunks()
     n = len(arr)
     unreadable = np.zeros(n, dtype=bool)
     if pa.types.is_string(arr.type) or pa.types.is_large_string(arr.type):

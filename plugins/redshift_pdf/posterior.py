@@ -346,32 +346,76 @@ def count_modes(p: np.ndarray, weights: np.ndarray, threshold: float, min_mass: 
     second = np.zeros(rows)
     multi = np.flatnonzero(runs > 1)
     if len(multi):
-        a = above[multi]
-        starts = a.copy()
-        starts[:, 1:] &= ~a[:, :-1]
-        label = np.cumsum(starts, axis=1)  # 1..runs on each run and the gap after it
-        with np.errstate(invalid="ignore", divide="ignore"):
-            pn = np.clip(p[multi] / top[multi, None], 0.0, 1.0)
-        change = np.ones(a.shape, dtype=bool)
-        change[:, 1:] = a[:, 1:] != a[:, :-1]
-        seg = 2.0 * np.cumsum(change, axis=1)  # segment ids, spaced 2 apart (pn is in [0, 1])
-        prefix = np.minimum.accumulate(pn - seg, axis=1) + seg  # min from segment start
-        suffix = np.minimum.accumulate((pn + seg)[:, ::-1], axis=1)[:, ::-1] - seg  # to end
-        interior = ~a & (label >= 1) & (label < runs[multi, None])
-        label = label + (interior & (prefix <= suffix))
-        np.maximum(label, 1, out=label)
-        k = int(runs[multi].max()) + 1
-        node_mass = p[multi] * (weights[multi] if np.ndim(weights) == 2 else weights)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            mass = node_mass / node_mass.sum(axis=1)[:, None]
-        key = (np.arange(len(multi))[:, None] * k + label).ravel()
-        per_run = np.bincount(key, weights=mass.ravel(), minlength=len(multi) * k)
-        per_run = per_run.reshape(len(multi), k)[:, 1:]
-        big = per_run >= min_mass
-        modes[multi] = np.maximum(big.sum(axis=1), 1)
-        srt = np.sort(np.where(big, per_run, 0.0), axis=1)
-        second[multi] = srt[:, -2]
+        modes[multi], second[multi] = _basin_masses(p[multi], above[multi], runs[multi],
+                                                    weights[multi] if np.ndim(weights) == 2
+                                                    else weights, min_mass)
     modes = np.where(np.isfinite(top) & (top > 0), modes, 0)
+    return modes, second
+
+
+def _basin_masses(p: np.ndarray, above: np.ndarray, runs: np.ndarray, weights: np.ndarray,
+                  min_mass: float) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`count_modes` for rows with two or more runs: the basins' probabilities.
+
+    Work is done on the run boundaries and the gaps between runs only: each gap's split node
+    (its first lowest node, which goes to the right-hand peak) by a segmented minimum over the
+    gap nodes, and each basin's probability as a difference of the row's cumulative mass.
+    """
+    m, g = p.shape
+    # run starts and ends as flat indices into the m x g rows (row-major order: runs in order)
+    edge = np.zeros((m, g + 1), dtype=np.int8)
+    edge[:, 1:] = above
+    step = np.diff(edge, axis=1, append=0)  # +1 at a run's first node, -1 after its last
+    starts = np.flatnonzero(step[:, :-1] == 1)  # as indices into (m, g)
+    ends = np.flatnonzero(step == -1)  # the node after each run, as indices into (m, g + 1)
+    row_of_end = ends // (g + 1)
+    ends = ends - row_of_end  # now indices into (m, g) of the node after the run
+    # interior gaps: after run k up to the start of run k + 1 on the same row
+    last_run = np.cumsum(runs) - 1  # position of each row's last run in the run arrays
+    interior = np.ones(len(starts), dtype=bool)
+    interior[last_run] = False
+    gap_lo = ends[interior]  # first gap node (flat)
+    gap_hi = starts[1:][interior[:-1]]  # first node of the next run: the gap ends before it
+    flat = np.ascontiguousarray(p).reshape(-1)
+    lens = gap_hi - gap_lo
+    # the first lowest node of each gap: segmented minimum, then the first node equal to it
+    bounds = np.empty(2 * len(gap_lo), dtype=np.int64)
+    bounds[0::2] = gap_lo
+    bounds[1::2] = gap_hi
+    seg_min = np.fmin.reduceat(flat, bounds)[0::2]
+    gap_id = np.repeat(np.arange(len(gap_lo)), lens)
+    node = np.arange(len(gap_id)) - np.repeat(np.cumsum(lens) - lens, lens) + gap_lo[gap_id]
+    hit = np.flatnonzero(flat[node] == seg_min[gap_id])
+    first = np.ones(len(hit), dtype=bool)
+    first[1:] = gap_id[hit[1:]] != gap_id[hit[:-1]]
+    split = gap_lo.copy()  # a gap of NaN densities only: split at its start
+    split[gap_id[hit[first]]] = node[hit[first]]
+    # cumulative mass before each node: basin k holds [split_{k-1}, split_k) on its row
+    mass = p * weights
+    cum = np.zeros((m, g + 1))
+    np.cumsum(mass, axis=1, out=cum[:, 1:])
+    cum_flat = cum.reshape(-1)
+    row_of_split = split // g
+    right = cum_flat[split + row_of_split]  # mass before the split node, on its row
+    total = cum[:, -1]
+    # each basin's mass: boundaries 0, split_1, ..., split_{runs-1}, total per row
+    edges = np.zeros(len(starts) + m)  # per row: runs + 1 boundary values
+    row_first = np.cumsum(runs + 1) - (runs + 1)
+    pos_split = np.flatnonzero(interior) + np.repeat(np.arange(m), runs - 1) + 1
+    edges[pos_split] = right
+    edges[row_first + runs] = total
+    basin = np.diff(edges)
+    keep = np.ones(len(basin), dtype=bool)
+    keep[row_first[1:] - 1] = False  # drop the differences across rows
+    basin = basin[keep]
+    row_of_run = np.repeat(np.arange(m), runs)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        share = basin / total[row_of_run]
+    big = share >= min_mass
+    modes = np.maximum(np.bincount(row_of_run[big], minlength=m), 1)
+    order = np.lexsort((np.where(big, share, 0.0), row_of_run))
+    ranked = np.where(big, share, 0.0)[order]
+    second = ranked[last_run - 1]
     return modes, second
 
 
@@ -397,10 +441,14 @@ def histogram_density(values: np.ndarray, offsets: np.ndarray, bins: int
 
 
 def coarse_weights(z: np.ndarray, block: int) -> tuple[np.ndarray, np.ndarray]:
-    """For a shared grid: the node indices every ``block`` nodes (and the last) and the
-    weights (G x K) whose product with a density row is its CDF at those nodes."""
+    """For a shared grid: the node indices every ``block`` nodes (the last block ending on
+    the last node) and the weights (G x K) whose product with a density row is its CDF at
+    those nodes."""
     g = len(z)
-    nodes = np.unique(np.concatenate([np.arange(0, g, block), [g - 1]]))
+    # every block at most ``block`` cells and the last exactly ``block`` (when the grid has
+    # that many), so a window of block + 1 nodes from any coarse node stays on the grid
+    last = max(g - 1 - block, 0)
+    nodes = np.unique(np.concatenate([np.arange(0, last, block), [last, g - 1]]))
     w = np.column_stack([weights_below(z, z[i]) if i < g - 1 else trapezoid_weights(z)
                          for i in nodes])
     return nodes, w
@@ -411,42 +459,60 @@ def shared_grid_quantiles(z: np.ndarray, p: np.ndarray, coarse_cdf: np.ndarray,
     """Quantiles for a shared grid from the CDF at coarse nodes (a matrix product), refined
     inside the one coarse block holding each level: the same exact inversion of the linear
     interpolant's CDF as :func:`grid_quantiles`, with about G / block + block work per level
-    instead of a full cumulative sum."""
+    instead of a full cumulative sum.
+
+    ``p`` may be float32: only the block's nodes are read from it, in double precision. All
+    levels are found together: each (row, level) pair reads the ``block + 1`` densities of
+    its block (a window of the row, padded with one empty cell so every array is contiguous),
+    sums its cells with one matrix product and inverts the quadratic of the cell holding the
+    level.
+    """
     rows, g = p.shape
     total = coarse_cdf[:, -1]
     levels = np.asarray(levels, dtype=np.float64)
+    n_l = len(levels)
     block = int(np.max(np.diff(nodes)))
-    flat = np.ascontiguousarray(p).ravel()
-    row_start = (np.arange(rows) * g)[:, None]
-    out = np.empty((rows, len(levels)))
+    w = block + 1
+    h_grid = np.append(np.diff(z), np.zeros(w))
+    # per block: half cell widths on a window of w nodes, the last (w-th) cell empty
+    cell = nodes[:-1, None] + np.arange(w)[None, :]
+    half = 0.5 * h_grid[cell]
+    half[:, -1] = 0.0
+    upper = np.triu(np.ones((w, w)))
+    padded = p if nodes[-2] + block < g else np.pad(p, ((0, 0), (0, block)))
+    windows = np.lib.stride_tricks.sliding_window_view(padded, w, axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):
-        inv = 1.0 / total
-        for li, level in enumerate(levels):
-            target = level * total  # unnormalised
-            j = np.count_nonzero(coarse_cdf < target[:, None], axis=1) - 1
-            np.clip(j, 0, len(nodes) - 2, out=j)
-            start = nodes[j]
-            idx = np.minimum(start[:, None] + np.arange(block + 1)[None, :], g - 1)
-            zz = z[idx]
-            pp = flat.take(idx + row_start)
-            h = np.diff(zz, axis=1)
-            cells = (pp[:, :-1] + pp[:, 1:]) * 0.5 * h
-            local = np.cumsum(cells, axis=1)
-            base = coarse_cdf[np.arange(rows), j]
-            k = np.count_nonzero(base[:, None] + local < target[:, None], axis=1)
-            np.clip(k, 0, block - 1, out=k)
-            below = base + np.where(k > 0, local[np.arange(rows), np.maximum(k - 1, 0)], 0.0)
-            kk = k[:, None]
-            z_i = np.take_along_axis(zz, kk, axis=1)[:, 0]
-            hk = np.take_along_axis(h, kk, axis=1)[:, 0]
-            p_i = np.take_along_axis(pp, kk, axis=1)[:, 0]
-            p_j = np.take_along_axis(pp, kk + 1, axis=1)[:, 0]
-            c = (target - below) * inv
-            a = 0.5 * hk * (p_j - p_i) * inv
-            b = hk * p_i * inv
-            disc = np.sqrt(np.maximum(b * b + 4.0 * a * c, 0.0))
-            denom = b + disc
-            t = np.where(denom > 0.0, 2.0 * c / denom, 0.0)
-            np.clip(t, 0.0, 1.0, out=t)
-            out[:, li] = z_i + t * hk
-    return out
+        target = (levels[:, None] * total[None, :])  # L x rows
+        j = (coarse_cdf.T[:, None, :] < target[None, :, :]).sum(axis=0) - 1  # L x rows
+        np.clip(j, 0, len(nodes) - 2, out=j)
+        j = j.T.ravel()  # pair = row * L + level
+        row = np.repeat(np.arange(rows), n_l)
+        start = nodes[j]
+        pp = windows[row, start].astype(np.float64)  # N x w
+        flat = pp.ravel()
+        cells = np.empty_like(pp)
+        cf = cells.ravel()
+        np.add(flat[:-1], flat[1:], out=cf[:-1])
+        cf[-1] = 0.0
+        cells *= half[j]
+        local = cells @ upper  # N x w: CDF within the window after each cell
+        base = coarse_cdf.ravel()[row * coarse_cdf.shape[1] + j]
+        need = target.T.ravel() - base
+        k = np.count_nonzero(local < need[:, None], axis=1)
+        np.minimum(k, block - 1, out=k)
+        n = np.arange(len(k))
+        below = np.where(k > 0, local[n, np.maximum(k - 1, 0)], 0.0)
+        node = start + k
+        z_i = z[np.minimum(node, g - 1)]
+        hk = h_grid[node]
+        p_i = pp[n, k]
+        p_j = pp[n, k + 1]
+        inv = 1.0 / np.repeat(total, n_l)
+        c = (need - below) * inv
+        a = 0.5 * hk * (p_j - p_i) * inv
+        b = hk * p_i * inv
+        disc = np.sqrt(np.maximum(b * b + 4.0 * a * c, 0.0))
+        denom = b + disc
+        t = np.where(denom > 0.0, 2.0 * c / denom, 0.0)
+        np.clip(t, 0.0, 1.0, out=t)
+    return (z_i + t * hk).reshape(rows, n_l)
