@@ -151,7 +151,7 @@ class KCorrection(Annotator):
         # ---- extinction and V_max (extinction.py, vmax.py) ------------------------------
         if extinction is not None:
             requires.append(_ext.EBV_INPUT)
-            provides.extend(extinction.columns([b.name for b in bands if b.method is not None]))
+            provides.extend(extinction.columns(list(extinction.coefficients)))  # every band used
             flags.update(extinction.flags())
         if vmax is not None:
             provides.extend(vmax.columns())
@@ -282,6 +282,10 @@ class KCorrection(Annotator):
                 out[f"absolute_magnitude_{b.name}_err_mag"] = self._error(
                     b, z, colour, errs, z_err, dmu_dz, absolute)
             method.release()  # the weights kept for the error column are not needed now
+        # ---- extinction and V_max (extinction.py, vmax.py) ------------------------------
+        for band, a in extinction.items():  # bands lending only their colour (no K) too
+            out.setdefault(f"extinction_{band}_mag", a)
+        # ---- end: extinction and V_max ---------------------------------------------------
         return out
 
     def _dmu_dz(self, z: np.ndarray) -> np.ndarray:

@@ -314,6 +314,10 @@ class RedshiftPdf(Annotator):
                     column_map[logical] = col
                 self.mag_inputs[name] = logical
         self.requires = tuple(requires)
+        # Galactic extinction per band, from the kcorrection annotator's columns when it runs
+        # with an E(B-V): subtracted from each magnitude (and so from the colours) first
+        self.extinction_inputs = {name: f"extinction_{name}_mag" for name in self.mag_inputs}
+        self.optional = tuple(self.extinction_inputs.values())
         self.column_map = column_map
         self.replaces = ("reachable_probability",)
         self.flags = {k: v for k, v in FLAGS.items()
@@ -519,6 +523,9 @@ class RedshiftPdf(Annotator):
         out["redshift_pdf_modes"] = np.zeros(n, dtype=np.int16)
         flags = {k: np.zeros(n, dtype=bool) for k in self.flags}
         mags = {name: batch.values(logical) for name, logical in self.mag_inputs.items()}
+        for name, logical in self.extinction_inputs.items():
+            if batch.has(logical):  # a null A (no usable E(B-V)) gives a null M, as for M
+                mags[name] = mags[name] - batch.values(logical)
         if self.kind == "quantiles":
             zq = np.column_stack([batch.values(q) for q in self.quantile_inputs])
             self._run_blocks(n, lambda s, e: self._quantiles_block(zq[s:e], s, e, out, flags,

@@ -95,3 +95,42 @@ def test_template_mixture_posterior_at_a_point_equals_the_kcorrection_annotator(
     assert "redshift_pdf_magnitude_partial" in flags_text[2]
     assert "redshift_pdf_magnitude_partial" not in flags_text[1]
     assert math.isfinite(col(out, "absolute_magnitude_amber_p84_mag")[2])
+
+
+def test_magnitude_posterior_takes_the_galactic_extinction_of_the_kcorrection_run(tmp_path):
+    """With an E(B-V) column the kcorrection annotator subtracts A from every magnitude it
+    uses (the colour's bands too) before colours and M; a posterior of draws all at the
+    catalogue redshift must then still give exactly its absolute magnitude (consistency
+    check), and a row without E(B-V) a null M in both, without a partial-posterior flag."""
+    z = np.array([0.3, 0.8, 1.4, 0.9])
+    amber = np.array([21.2, 22.9, 23.8, 23.0])
+    infrared = np.array([20.1, 21.5, 22.0, 21.6])
+    ebv = pa.array([0.02, 0.15, 0.4, None], pa.float64())
+    kc = {"method": "template_mix", "seds": ["seds/early.csv", "seds/starforming.csv"],
+          "colour": ["amber", "infrared"], "z_max": 3.5}
+    bands = {"bands": {
+        "infrared": {"magnitude": "mag_ir", "filter": "filters/infrared.csv"},
+        "amber": {"magnitude": "mag_amber", "filter": "filters/amber.csv", "kcorrection": kc}}}
+    draws = [[zi] * 5 for zi in z]
+    for name in ("seds", "filters"):
+        (tmp_path / name).symlink_to(SAMPLES / name)
+    table = pa.table({"z": z, "mag_amber": amber, "mag_ir": infrared, "ebv": ebv,
+                      "s": list_column(draws, pa.float64())})
+    out, _, _ = annotate(tmp_path, table, {"kind": "samples", "column": "s"}, bands)
+    a_amber = col(out, "extinction_amber_mag")
+    a_ir = col(out, "extinction_infrared_mag")  # a colour-only band has its A column too
+    assert (a_amber[:3] > a_ir[:3]).all() and (a_ir[:3] > 0).all()  # bluer band, larger A
+    direct = col(out, "absolute_magnitude_amber_mag")
+    assert np.isfinite(direct[1:3]).all() and np.isnan(direct[3])
+    finite = np.isfinite(direct)
+    np.testing.assert_allclose(col(out, "absolute_magnitude_amber_p50_mag")[finite],
+                               direct[finite], rtol=1e-12)
+    assert np.isnan(col(out, "absolute_magnitude_amber_p50_mag")[3])
+    flags_text = out.column("annotation_flags").to_pylist()
+    assert "redshift_pdf_magnitude_partial" not in (flags_text[3] or "")
+    # without the E(B-V) column neither M is corrected: the posterior's differs from above
+    plain, _, _ = annotate(tmp_path, table.drop(["ebv"]), {"kind": "samples", "column": "s"},
+                           bands)
+    diff = col(plain, "absolute_magnitude_amber_p50_mag") - \
+        col(out, "absolute_magnitude_amber_p50_mag")
+    assert (np.abs(diff[finite]) > 1e-3).all()
