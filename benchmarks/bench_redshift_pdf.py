@@ -39,6 +39,9 @@ import time
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
+# Per-core figures: pin the BLAS pools before numpy loads (children inherit the setting).
+for var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(var, "1")
 
 import numpy as np  # noqa: E402
 import pyarrow as pa  # noqa: E402
