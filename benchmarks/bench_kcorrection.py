@@ -112,7 +112,8 @@ def best_of(fn, repeat: int) -> float:
 
 def make_batch(inst: KCorrection, table: pa.Table) -> Batch:
     rb = table.to_batches(max_chunksize=table.num_rows)[0]
-    resolve = {"redshift": ("catalogue", "z"), "redshift_error": ("catalogue", "z_err")}
+    resolve = {"redshift": ("catalogue", "z"), "observed:redshift": ("catalogue", "z"),
+               "redshift_error": ("catalogue", "z_err")}
     for logical, col in inst.column_map.items():
         resolve[logical] = ("catalogue", col)
     return Batch(rb, resolve, {}, lambda owner, reason, mask: None, "kcorrection")
@@ -196,7 +197,8 @@ def main() -> None:
         band = next(b for b in inst.bands if b.name == name)
         method = band.method
         colour = cyan - amber if method.colour else None
-        t_k = best_of(lambda: method.evaluate(z, colour), args.repeat)
+        # a fresh solve each time: the mixture keeps its last solution for the same arrays
+        t_k = best_of(lambda: (method.release(), method.evaluate(z, colour)), args.repeat)
         # The per-band work of annotate(): one band's K, M and flags, mu excluded.
         no_err = KCorrection([b for b in inst.bands if b.name != name] + [
             type(band)(**{**band.__dict__, "error_input": None, "error_column": None})],

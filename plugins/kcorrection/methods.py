@@ -364,9 +364,19 @@ class MixSolution:
     outside: np.ndarray  # beyond by more: null K
     degenerate: np.ndarray  # both templates have the same colour here: null K
     insensitive: np.ndarray  # K spread over the colour's +-1 sigma above the bound; null K
-    sensitivity: np.ndarray  # dK/dc at the mixture found (NaN where there is none)
     spread: np.ndarray  # |K(c + sigma) - K(c - sigma)| (mag)
     missing: np.ndarray  # no colour
+
+    @property
+    def sensitivity(self) -> np.ndarray:
+        """dK/dc at the mixture found (NaN where there is none): (dK/dw) / (dc/dw) =
+        (dF_R / F_R) / (dF_p / F_p - dF_q / F_q) at w (only when asked: a check, not a column).
+        """
+        (a_r, b_r), (a_p, b_p), (a_q, b_q) = (self.fluxes[k] for k in ("r", "p", "q"))
+        w = self.w
+        with np.errstate(invalid="ignore", divide="ignore"):
+            d_r, d_p, d_q = b_r - a_r, b_p - a_p, b_q - a_q
+            return (d_r / (a_r + w * d_r)) / (d_p / (a_p + w * d_p) - d_q / (a_q + w * d_q))
 
 
 @dataclass(kw_only=True)
@@ -574,12 +584,9 @@ class TemplateMix(Method):
             clipped[rows] = near
             outside[rows] = ~near
         w[~inside | missing | outside | degenerate] = np.nan
-        # dK/dc = (dK/dw) / (dc/dw) = (dF_R / F_R) / (dF_p / F_p - dF_q / F_q) at w.
         (a_r, b_r) = fluxes["r"]
+        d_r = b_r - a_r
         with np.errstate(invalid="ignore", divide="ignore"):
-            d_r, d_p, d_q = b_r - a_r, b_p - a_p, b_q - a_q
-            sensitivity = (d_r / (a_r + w * d_r)) / (d_p / (a_p + w * d_p)
-                                                      - d_q / (a_q + w * d_q))
             # K of the mixtures matching the colour -+ its error (weights clamped by colour)
             sigma = np.full(z.shape, self.assumed_colour_error_mag)
             if colour_err is not None:
@@ -587,23 +594,27 @@ class TemplateMix(Method):
                                  sigma)
             shift = np.exp((0.4 * LN10) * sigma)
 
-            def k_at(rho_x):
+            def flux_at(rho_x):
+                """The mixture's band flux N = F_R^A + w_x (F_R^B - F_R^A) at ratio rho_x."""
                 a_x = a_p - rho_x * a_q
                 w_x = a_x / (a_x - (b_p - rho_x * b_q))
-                between = (rho_x >= lo) & (rho_x <= hi)
-                end = np.where(np.abs(np.log(rho_x / ra)) <= np.abs(np.log(rho_x / rb)), 0.0,
-                               1.0)
-                w_x = np.where(between, np.clip(w_x, 0.0, 1.0), end)
-                return -2.5 * np.log10(a_r + w_x * d_r)
+                np.clip(w_x, 0.0, 1.0, out=w_x)
+                off = np.flatnonzero(~((rho_x >= lo) & (rho_x <= hi)))  # beyond: nearer end
+                if off.size:
+                    r_off = rho_x[off]
+                    w_x[off] = np.where(np.abs(np.log(r_off / ra[off]))
+                                        <= np.abs(np.log(r_off / rb[off])), 0.0, 1.0)
+                return a_r + w_x * d_r
 
-            spread = np.abs(k_at(rho * shift) - k_at(rho / shift))
+            # |K(+) - K(-)| = 2.5 |log10(N+ / N-)|: one logarithm per row
+            spread = (2.5 / LN10) * np.abs(np.log(flux_at(rho * shift) / flux_at(rho / shift)))
             insensitive = np.isfinite(w) & ~(spread <= self.max_k_spread_mag)
         w[insensitive] = np.nan
         clipped &= ~insensitive
         return MixSolution(idx=idx, frac=frac, inside=inside, fluxes=fluxes, rho=rho, w=w,
                            free=free & inside & ~missing & ~insensitive, clipped=clipped,
                            outside=outside, degenerate=degenerate, missing=missing,
-                           insensitive=insensitive, sensitivity=sensitivity, spread=spread)
+                           insensitive=insensitive, spread=spread)
 
     def _solution(self, z: np.ndarray, colour: np.ndarray,
                   colour_err: np.ndarray | None = None) -> MixSolution:
