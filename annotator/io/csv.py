@@ -218,11 +218,14 @@ class ParsedBlocks:
             got: list[pa.RecordBatch] = []
             have = 0
             while have < rows:
-                batch = next(batches)
+                batch = next(batches, None)
+                if batch is None:
+                    break
                 got.append(batch)
                 have += batch.num_rows
             if have != rows:  # write_table writes each block's batches whole
-                raise InputError("CSV first-pass rows out of step (internal error)")
+                raise InputError(f"the first pass's kept rows end early ({have} of {rows} "
+                                 f"rows of a block read back)")
             yield pa.Table.from_batches(got, self.schema), list(rejected), n_lines, where
 
 
