@@ -12,8 +12,10 @@ Reading rules (docs/csv.md describes them for users):
   read; its lines are set aside, never joined); empty lines are not rows.
 * Types: the columns the job reads as numbers are float64 whatever their text looks like;
   ``column_types`` overrides; every other column takes the widest type its values need over the
-  whole file (int64 -> float64 -> string; bool or text -> string), found in one cheap first pass
-  over those columns only (skipped when the first block is the whole file).
+  whole file (int64 -> float64 -> string; bool or text -> string), found in a first pass
+  (skipped when the first block is the whole file). The pass parses each block as the main
+  pass would and keeps the rows on disk (:class:`ParsedBlocks`); the main pass reads them back
+  when the types held, so the text is parsed once; else it parses again with the final types.
 * A row with the wrong number of fields, or with a cell that cannot become its column's type,
   is set aside with its physical line number (header = line 1), a reason and its raw text.
 """
@@ -430,8 +432,8 @@ class CsvReader:
         clean, numbers, rejected, n_lines = self._clean(block, line, quick=True)
         if clean:
             table, invalid, cast_failed = self._read_typed(clean, guess)
-            if table.num_rows + len(invalid) != len(numbers):
-                clean, numbers, rejected, n_lines = self._clean(block, line)  # empty lines
+            clean, numbers, rejected, n_lines = self._numbered_again(
+                block, line, (clean, numbers, rejected, n_lines), table.num_rows + len(invalid))
             if cast_failed or table.num_rows + len(invalid) != len(numbers):
                 return None
             for n in open_:
@@ -539,6 +541,15 @@ class CsvReader:
         clean, numbers, rejected = self._clean_lines(block, first_line, decoded_ok)
         return clean, numbers, rejected, n_lines
 
+    def _numbered_again(self, block, first_line: int, cleaned: tuple, rows: int) -> tuple:
+        """``cleaned`` from ``_clean(..., quick=True)``, or, when pyarrow read fewer ``rows``
+        than it numbered and the quick numbering was the one used (no quote, nothing set
+        aside), the block cleaned with its empty lines found: the same text, exact numbers."""
+        _, numbers, rejected, _ = cleaned
+        if rows == len(numbers) or rejected or block.find(QUOTE) >= 0:
+            return cleaned
+        return self._clean(block, first_line)
+
     def _clean_lines(self, block: bytes, first_line: int, decoded_ok: bool,
                      state_machine: bool = False):
         """The per-line pass: only for blocks that failed a cheap check."""
@@ -615,8 +626,8 @@ class CsvReader:
         if not clean:
             return target.empty_table(), rejected, n_lines
         table, invalid, cast_failed = self._read_typed(clean, target)
-        if table.num_rows + len(invalid) != len(numbers):
-            clean, numbers, rejected, n_lines = self._clean(block, first_line)  # empty lines
+        clean, numbers, rejected, n_lines = self._numbered_again(
+            block, first_line, (clean, numbers, rejected, n_lines), table.num_rows + len(invalid))
         if table.num_rows + len(invalid) != len(numbers):
             # A quote opened in the middle of a field swallowed later lines: find the lines
             # that leave a quote open with the exact rules, and read again without them.
