@@ -26,6 +26,7 @@ import codecs
 import gzip
 import io
 import os
+import shutil
 import tempfile
 import threading
 from collections.abc import Iterator
@@ -169,25 +170,32 @@ class ParsedBlocks:
 
     #: rows set aside held in memory at most; a messier file is parsed again instead
     MAX_REJECTED = 100_000
+    #: share of the spill directory's free space (when created) the kept rows may take;
+    #: beyond it they are dropped and the main pass parses the text again
+    MAX_FREE_SHARE = 0.5
 
-    def __init__(self, schema: pa.Schema):
+    def __init__(self, schema: pa.Schema, directory: str):
         self.schema = schema
         self.blocks: list[tuple[int, int, list, int]] = []
         self.n_rejected = 0
         #: held while one reader reads the rows back (another reader parses the text)
         self.in_use = threading.Lock()
-        self._fh = tempfile.TemporaryFile(prefix="annotator-csv-", dir=os.environ.get(
-            "ANNOTATOR_CSV_SPILL_DIR") or None)
+        self.budget = int(shutil.disk_usage(directory).free * self.MAX_FREE_SHARE)
+        self._fh = tempfile.TemporaryFile(prefix="annotator-csv-", dir=directory)
         self._writer = pa.ipc.new_stream(self._fh, schema)
 
     @classmethod
     def create(cls, schema: pa.Schema) -> ParsedBlocks | None:
-        """A new one, or None where rows cannot be kept on disk (no temporary directory;
+        """A new one, or None where rows cannot be kept on disk (no temporary directory, or
+        one in memory (tmpfs), where kept rows would grow the memory used with the file;
         ``ANNOTATOR_CSV_SPILL=0`` turns keeping off)."""
         if os.environ.get("ANNOTATOR_CSV_SPILL") == "0":
             return None
+        directory = os.environ.get("ANNOTATOR_CSV_SPILL_DIR") or tempfile.gettempdir()
         try:
-            return cls(schema)
+            if _in_memory_fs(directory):
+                return None
+            return cls(schema, directory)
         except OSError:
             return None
 
@@ -200,6 +208,8 @@ class ParsedBlocks:
         try:
             if table.num_rows:
                 self._writer.write_table(table)
+            if self._fh.tell() > self.budget:
+                return False  # the disk would fill: parse the text again instead
         except (OSError, pa.ArrowException):
             return False
         self.blocks.append((table.num_rows, n_lines, rejected, where))
@@ -229,6 +239,24 @@ class ParsedBlocks:
                 raise InputError(f"the first pass's kept rows end early ({have} of {rows} "
                                  f"rows of a block read back)")
             yield pa.Table.from_batches(got, self.schema), list(rejected), n_lines, where
+
+
+def _in_memory_fs(directory: str, mounts: str = "/proc/mounts") -> bool:
+    """Whether ``directory`` is on a file system held in memory (tmpfs, ramfs), by the
+    longest mount point holding it in ``mounts`` (Linux); False where that is unknown."""
+    try:
+        with open(mounts, encoding="utf-8", errors="replace") as fh:
+            table = [line.split()[1:3] for line in fh if len(line.split()) >= 3]
+    except OSError:
+        return False
+    where = os.path.realpath(directory)
+    best, kind = "", ""
+    for point, fstype in table:
+        point = point.replace("\\040", " ")
+        inside = where == point or where.startswith(point.rstrip("/") + "/")
+        if inside and len(point) >= len(best):
+            best, kind = point, fstype
+    return kind in ("tmpfs", "ramfs")
 
 
 # The first pass's parsed blocks of the last file typed in this process, for the reader of

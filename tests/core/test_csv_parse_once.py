@@ -130,3 +130,36 @@ def test_kept_rows_serve_only_their_file_and_types(tmp_path, monkeypatch):
     first.resolve_types(NUMERIC)
     path.write_text(path.read_text() + "\n".join(_clean_rows(3, seed=9)) + "\n")
     assert reader._kept_blocks(schema) is None  # the file changed
+
+
+def test_kept_rows_dropped_when_the_disk_would_fill(tmp_path, monkeypatch):
+    """Past its share of the spill directory's free space the first pass stops keeping rows;
+    the main pass parses the text again and gives the same chunks."""
+    path = tmp_path / "c.csv"
+    path.write_text("\n".join(["id,ra,z,field,mag"] + _clean_rows(900)) + "\n")
+    monkeypatch.setattr(csvmod.ParsedBlocks, "MAX_FREE_SHARE", 1e-15)  # a few bytes at most
+    small = _read(path, spill=True, monkeypatch=monkeypatch)
+    assert not small[2]  # not kept
+    monkeypatch.undo()
+    _same(small, _read(path, spill=False, monkeypatch=monkeypatch))
+
+
+def test_no_kept_rows_on_a_file_system_in_memory(tmp_path, monkeypatch):
+    """Rows kept on a tmpfs would be memory growing with the file: they are not kept."""
+    mounts = tmp_path / "mounts"
+    mounts.write_text("/dev/vda / ext4 rw 0 0\n"
+                      f"tmpfs {tmp_path}/ram tmpfs rw,size=1024k 0 0\n"
+                      f"/dev/vdb {tmp_path}/ram/disk ext4 rw 0 0\n")
+    assert csvmod._in_memory_fs(str(tmp_path / "ram"), str(mounts))
+    assert csvmod._in_memory_fs(str(tmp_path / "ram" / "sub"), str(mounts))
+    assert not csvmod._in_memory_fs(str(tmp_path / "ram" / "disk"), str(mounts))
+    assert not csvmod._in_memory_fs(str(tmp_path / "ramx"), str(mounts))
+    assert not csvmod._in_memory_fs(str(tmp_path), str(tmp_path / "no-such-file"))
+    schema = pa.schema([pa.field("a", pa.int64())])
+    monkeypatch.setenv("ANNOTATOR_CSV_SPILL", "1")
+    monkeypatch.setenv("ANNOTATOR_CSV_SPILL_DIR", str(tmp_path))
+    kept = csvmod.ParsedBlocks.create(schema)
+    assert kept is not None
+    kept.close()
+    monkeypatch.setattr(csvmod, "_in_memory_fs", lambda directory: True)
+    assert csvmod.ParsedBlocks.create(schema) is None
