@@ -4,7 +4,10 @@ Measured in one run, each in its own process (wall and CPU seconds, peak RSS of 
 process), best of ``--repeat``:
 
 * **floor**: ``pyarrow.csv.open_csv`` streaming over the file with its own type inference, no
-  annotation, no output (the cost of reading the CSV at all);
+  annotation, no output (the cost of reading the CSV at all), with its threads and with one
+  thread; the ratios use the cheaper of the two in CPU;
+* **reader alone**: annotator's ``CsvReader`` typing the file and cutting it into chunks (no
+  annotation, no output), as the plan and the engine use it;
 * **csv run**: ``annotator run`` on the CSV with the default typing (the job's numeric inputs as
   float64, every other column typed over the whole file in a first pass);
 * **csv run, types given**: the same with ``[input].column_types`` naming every other column
@@ -14,7 +17,8 @@ process), best of ``--repeat``:
 * optionally **old reader** (``--old-tree DIR``: a checkout of an earlier commit, run with
   that folder first on the import path), e.g. ``git archive 7ffa072 | tar -x -C /tmp/old``.
 
-Ratios printed: run / floor, and the CSV part of the run, (csv run - parquet run) / floor.
+Ratios printed: reader alone / floor and run / floor (the lines starting READER ALONE and
+WHOLE RUN), and the CSV part of the run, (csv run - parquet run) / floor.
 Peak RSS at two sizes shows whether memory grows with the file.
 
     python benchmarks/bench_csv.py                       # 2 000 000 rows (make bench)
@@ -35,9 +39,24 @@ from _common import measured as common_measured
 
 FLOOR = ("import sys, pyarrow.csv as c\n"
          "n = 0\n"
-         "for b in c.open_csv(sys.argv[1], read_options=c.ReadOptions(block_size=8 << 20)):\n"
+         "for b in c.open_csv(sys.argv[1], read_options=c.ReadOptions(block_size=8 << 20,\n"
+         "                    use_threads=sys.argv[2] == 'threads')):\n"
          "    n += b.num_rows\n"
          "print(n)\n")
+# annotator's CSV reader alone, as the plan and the engine use it (the numeric inputs of the
+# benchmark's default job are more than z and z_err; fewer numeric columns leave more to type)
+READER = ("import sys\n"
+          "from pathlib import Path\n"
+          "from annotator.io.csv import CsvReader\n"
+          "from annotator.io.readers import expand_inputs\n"
+          "src = expand_inputs([Path(sys.argv[1])])[0]\n"
+          "reader = CsvReader(src)\n"
+          "schema = reader.resolve_types({'z', 'z_err'})\n"
+          "n = sum(c.table.num_rows for c in CsvReader(src).chunks(250_000, target=schema))\n"
+          "print(n)\n")
+FLOOR_THREADS = "floor: pyarrow CSV reader alone"
+FLOOR_ONE = "floor: pyarrow CSV reader, 1 thread"
+READER_ALONE = "annotator's CSV reader alone"
 PASS_THROUGH_TYPES = {"objid": "int64", "ra": "float64", "dec": "float64",
                       **{f"mag_{b}": "float64" for b in "ugriz"}}
 
@@ -99,14 +118,20 @@ for chunk in reader.chunks(250_000, target=schema):
     pass
 main = cpu() - t
 peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-t = cpu()
-for b in c.open_csv(sys.argv[1], read_options=c.ReadOptions(block_size=8 << 20)):
-    pass
-floor = cpu() - t
+floors = []
+for threads in (True, False):
+    t = cpu()
+    for b in c.open_csv(sys.argv[1], read_options=c.ReadOptions(block_size=8 << 20,
+                                                                 use_threads=threads)):
+        pass
+    floors.append(cpu() - t)
+floor = min(floors)
 print(f"reader only, CPU s: open (header + 4 MiB type sample) {opened:.2f}, first pass "
-      f"(types of the 8 columns no annotator reads) {first:.2f}, main pass (clean + typed "
-      f"parse + chunking) {main:.2f}; pyarrow alone {floor:.2f}; reader total / floor "
-      f"{(opened + first + main) / floor:.2f}x; peak RSS of the reader alone {peak:.0f} MiB")
+      f"(types of the 8 columns no annotator reads; parses every block and keeps its rows) "
+      f"{first:.2f}, main pass (reads the kept rows back + chunking) {main:.2f}; pyarrow "
+      f"alone {floors[0]:.2f} (its threads) / {floors[1]:.2f} (1 thread); reader total / "
+      f"cheaper floor {(opened + first + main) / floor:.2f}x; peak RSS of the reader alone "
+      f"{peak:.0f} MiB")
 """
 
 
@@ -140,8 +165,9 @@ def main() -> int:
         parquet = synthetic_catalogue(DATA / f"bench_{rows}.parquet", rows)
         repeat = args.repeat if rows == args.rows else 1
         cases = {
-            "floor: pyarrow CSV reader alone": lambda: measured(
-                [sys.executable, "-c", FLOOR, str(csv)]),
+            FLOOR_THREADS: lambda: measured([sys.executable, "-c", FLOOR, str(csv), "threads"]),
+            FLOOR_ONE: lambda: measured([sys.executable, "-c", FLOOR, str(csv), "one"]),
+            READER_ALONE: lambda: measured([sys.executable, "-c", READER, str(csv)]),
             "csv run (default typing)": lambda: run_job(csv, OUT / "csv_bench"),
             "csv run (column_types given)": lambda: run_job(csv, OUT / "csv_bench", types=True),
             "parquet run (same rows)": lambda: run_job(parquet, OUT / "csv_bench"),
@@ -156,7 +182,8 @@ def main() -> int:
                 best = r if best is None else tuple(min(a, b) for a, b in zip(best, r))
             results[(name, rows)] = best
     rows = args.rows
-    floor = results[("floor: pyarrow CSV reader alone", rows)]
+    # the competing approach: pyarrow's reader alone, the cheaper (in CPU) of its two ways
+    floor = min(results[(FLOOR_THREADS, rows)], results[(FLOOR_ONE, rows)], key=lambda r: r[1])
     parquet = results[("parquet run (same rows)", rows)]
     print(f"\n{rows:,} rows, {(DATA / f'bench_{rows}.csv').stat().st_size / 1e6:.0f} MB of CSV; "
           f"best of {args.repeat}")
@@ -167,6 +194,15 @@ def main() -> int:
             continue
         print(f"{name:36} {wall:7.2f} {cpu:7.2f} {rows / wall:11,.0f} {peak:9.0f} "
               f"{wall / floor[0]:10.2f} {cpu / floor[1]:9.2f}")
+    print(f"(floor = the cheaper in CPU of the two pyarrow rows: {floor[1]:.2f} s CPU)")
+    reader = results[(READER_ALONE, rows)]
+    print(f"READER ALONE: annotator {reader[1]:.2f} s CPU against pyarrow alone {floor[1]:.2f} s "
+          f"CPU, same run: {reader[1] / floor[1]:.2f}x (wall {reader[0] / floor[0]:.2f}x; "
+          f"target <= 1.3x)")
+    for name in ("csv run (default typing)", "csv run (column_types given)"):
+        run = results[(name, rows)]
+        print(f"WHOLE RUN, {name}: {run[1]:.2f} s CPU against pyarrow alone {floor[1]:.2f} s "
+              f"CPU: {run[1] / floor[1]:.2f}x (wall {run[0] / floor[0]:.2f}x)")
     for name in ("csv run (default typing)", "csv run (column_types given)",
                  "csv run, old reader (--old-tree)"):
         if (name, rows) not in results:
@@ -177,7 +213,7 @@ def main() -> int:
               f"  (target <= 1.3x)")
     if len(sizes) > 1:
         small = sizes[0]
-        for name in ("csv run (default typing)", "floor: pyarrow CSV reader alone"):
+        for name in (READER_ALONE, "csv run (default typing)", FLOOR_THREADS, FLOOR_ONE):
             print(f"peak RSS {name}: {results[(name, small)][2]:.0f} MiB at {small:,} rows, "
                   f"{results[(name, rows)][2]:.0f} MiB at {rows:,} rows")
     breakdown(DATA / f"bench_{rows}.csv")

@@ -12,8 +12,10 @@ Reading rules (docs/csv.md describes them for users):
   read; its lines are set aside, never joined); empty lines are not rows.
 * Types: the columns the job reads as numbers are float64 whatever their text looks like;
   ``column_types`` overrides; every other column takes the widest type its values need over the
-  whole file (int64 -> float64 -> string; bool or text -> string), found in one cheap first pass
-  over those columns only (skipped when the first block is the whole file).
+  whole file (int64 -> float64 -> string; bool or text -> string), found in a first pass
+  (skipped when the first block is the whole file). The pass parses each block as the main
+  pass would and keeps the rows on disk (:class:`ParsedBlocks`); the main pass reads them back
+  when the types held, so the text is parsed once; else it parses again with the final types.
 * A row with the wrong number of fields, or with a cell that cannot become its column's type,
   is set aside with its physical line number (header = line 1), a reason and its raw text.
 """
@@ -23,6 +25,10 @@ from __future__ import annotations
 import codecs
 import gzip
 import io
+import os
+import shutil
+import tempfile
+import threading
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -152,6 +158,120 @@ def _normal_type(col: pa.ChunkedArray | pa.Array) -> pa.DataType:
     return pa.string()
 
 
+class ParsedBlocks:
+    """The rows of a file's blocks as parsed by the first pass, kept in an unlinked temporary
+    Arrow IPC file (never in memory) so that the main pass need not parse the text again
+    when the types found over the whole file are the ones the blocks were parsed with.
+
+    Per block it keeps (in memory) only its row count, its physical line count, its rows set
+    aside and the file position after it (progress). Reading it back yields exactly what
+    :meth:`CsvReader.parse_block` returned for each block, in order.
+    """
+
+    #: rows set aside held in memory at most; a messier file is parsed again instead
+    MAX_REJECTED = 100_000
+    #: share of the spill directory's free space (when created) the kept rows may take;
+    #: beyond it they are dropped and the main pass parses the text again
+    MAX_FREE_SHARE = 0.5
+
+    def __init__(self, schema: pa.Schema, directory: str):
+        self.schema = schema
+        self.blocks: list[tuple[int, int, list, int]] = []
+        self.n_rejected = 0
+        #: held while one reader reads the rows back (another reader parses the text)
+        self.in_use = threading.Lock()
+        self.budget = int(shutil.disk_usage(directory).free * self.MAX_FREE_SHARE)
+        self._fh = tempfile.TemporaryFile(prefix="annotator-csv-", dir=directory)
+        self._writer = pa.ipc.new_stream(self._fh, schema)
+
+    @classmethod
+    def create(cls, schema: pa.Schema) -> ParsedBlocks | None:
+        """A new one, or None where rows cannot be kept on disk (no temporary directory, or
+        one in memory (tmpfs), where kept rows would grow the memory used with the file;
+        ``ANNOTATOR_CSV_SPILL=0`` turns keeping off)."""
+        if os.environ.get("ANNOTATOR_CSV_SPILL") == "0":
+            return None
+        directory = os.environ.get("ANNOTATOR_CSV_SPILL_DIR") or tempfile.gettempdir()
+        try:
+            if _in_memory_fs(directory):
+                return None
+            return cls(schema, directory)
+        except OSError:
+            return None
+
+    def add(self, table: pa.Table, rejected: list, n_lines: int, where: int) -> bool:
+        """Keep one block; False (and nothing kept) when it cannot be kept (disk full, too
+        many rows set aside): then the caller drops this object."""
+        self.n_rejected += len(rejected)
+        if self.n_rejected > self.MAX_REJECTED:
+            return False
+        try:
+            if table.num_rows:
+                self._writer.write_table(table)
+            if self._fh.tell() > self.budget:
+                return False  # the disk would fill: parse the text again instead
+        except (OSError, pa.ArrowException):
+            return False
+        self.blocks.append((table.num_rows, n_lines, rejected, where))
+        return True
+
+    def finish(self) -> None:
+        self._writer.close()
+        self._fh.flush()
+
+    def close(self) -> None:
+        self._fh.close()
+
+    def __iter__(self) -> Iterator[tuple[pa.Table, list, int, int]]:
+        """(table, rows set aside, physical lines, file position after the block)."""
+        self._fh.seek(0)
+        batches = iter(pa.ipc.open_stream(self._fh))
+        for rows, n_lines, rejected, where in self.blocks:
+            got: list[pa.RecordBatch] = []
+            have = 0
+            while have < rows:
+                batch = next(batches, None)
+                if batch is None:
+                    break
+                got.append(batch)
+                have += batch.num_rows
+            if have != rows:  # write_table writes each block's batches whole
+                raise InputError(f"the first pass's kept rows end early ({have} of {rows} "
+                                 f"rows of a block read back)")
+            yield pa.Table.from_batches(got, self.schema), list(rejected), n_lines, where
+
+
+def _in_memory_fs(directory: str, mounts: str = "/proc/mounts") -> bool:
+    """Whether ``directory`` is on a file system held in memory (tmpfs, ramfs), by the
+    longest mount point holding it in ``mounts`` (Linux); False where that is unknown."""
+    try:
+        with open(mounts, encoding="utf-8", errors="replace") as fh:
+            table = [line.split()[1:3] for line in fh if len(line.split()) >= 3]
+    except OSError:
+        return False
+    where = os.path.realpath(directory)
+    best, kind = "", ""
+    for point, fstype in table:
+        point = point.replace("\\040", " ")
+        inside = where == point or where.startswith(point.rstrip("/") + "/")
+        if inside and len(point) >= len(best):
+            best, kind = point, fstype
+    return kind in ("tmpfs", "ramfs")
+
+
+# The first pass's parsed blocks of the last file typed in this process, for the reader of
+# the main pass (the engines open their own reader): one file's at most, so the temporary
+# disk space is bounded by one input (a dropped one is freed once no reader reads it: the
+# temporary file closes with its last reference).
+_PARSED: dict = {}
+
+
+def _keep_parsed(key, parsed: ParsedBlocks | None) -> None:
+    _PARSED.clear()
+    if parsed is not None:
+        _PARSED[key] = parsed
+
+
 class CsvReader:
     """CSV / CSV.gz with a header line; see the module docstring for what is set aside.
 
@@ -278,10 +398,16 @@ class CsvReader:
 
     def resolve_types(self, numeric) -> pa.Schema:
         """The schema for a job that reads ``numeric`` as numbers: those float64, the rest
-        typed over the whole file: one pass over the columns whose type is not yet certain
-        (text is certain), read with the types found so far and inferred again only for a
-        block where a value does not fit. No pass when the first block is the whole file or
-        ``column_types`` fixes every other column."""
+        typed over the whole file: one pass over the file when a column's type is not yet
+        certain (text is certain). No pass when the first block is the whole file or
+        ``column_types`` fixes every other column.
+
+        The pass parses each block in full with the types found so far, as the main pass
+        would, and keeps the rows (:class:`ParsedBlocks`, on disk) for the main pass, which
+        then reads them instead of the text. Where a value does not fit (a type widens) or a
+        block needs the careful path, the kept rows are dropped and the rest of the pass
+        only types the uncertain columns (pyarrow's inference for that block); the main pass
+        then parses the file again with the final types."""
         numeric = set(numeric)
         rest = [n for n in self.names if n not in numeric and n not in self.column_types]
         inferred = {n: self.sample_types[n] for n in rest}
@@ -289,8 +415,21 @@ class CsvReader:
         if not self._sample_is_whole and open_:
             line = 2
             self._records = 0
+            guess = self._schema(numeric, inferred, final=True)
+            parsed = ParsedBlocks.create(guess)
+            where = [0]
             try:
-                for block in self._body_blocks():
+                for block in self._body_blocks(where):
+                    if parsed is not None:
+                        got = self._parse_guessed(block, line, guess, open_, inferred)
+                        if got is not None:  # the block fits the types found so far
+                            line += got[2]
+                            if not parsed.add(*got, where[0]):
+                                parsed.close()  # cannot keep it: parse again later
+                                parsed = None
+                            continue
+                        parsed.close()
+                        parsed = None
                     got, n_lines = self._infer(block, line, open_,
                                                known={n: inferred[n] for n in open_})
                     line += n_lines
@@ -302,10 +441,56 @@ class CsvReader:
                 else:
                     self.exact_rows = self._records
             except (OSError, EOFError, gzip.BadGzipFile, pa.ArrowException) as exc:
+                if parsed is not None:
+                    parsed.close()
                 raise InputError(f"input {self.source.path}: unreadable near line {line}: "
                                  f"{exc}") from exc
+            if parsed is not None:
+                parsed.finish()
+            _keep_parsed(self._parsed_key(), parsed)
         self.schema = self._schema(numeric, inferred, final=True)
         return self.schema
+
+    def _parse_guessed(self, block, line: int, guess: pa.Schema, open_: list[str],
+                       inferred: dict) -> tuple[pa.Table, list[dict], int] | None:
+        """The block parsed as the main pass would with the types ``guess``, when it shows
+        that no uncertain column (``open_``) widens; None when it does not show it (a value
+        does not fit, a column with no value so far has one, quotes need the careful path):
+        the caller types that block as before and drops the kept rows."""
+        clean, numbers, rejected, n_lines = self._clean(block, line, quick=True)
+        if clean:
+            table, invalid, cast_failed = self._read_typed(clean, guess)
+            clean, numbers, rejected, n_lines = self._numbered_again(
+                block, line, (clean, numbers, rejected, n_lines), table.num_rows + len(invalid))
+            if cast_failed or table.num_rows + len(invalid) != len(numbers):
+                return None
+            for n in open_:
+                if pa.types.is_null(inferred[n]) and \
+                        table.column(n).null_count != table.num_rows:
+                    return None  # values where the first block had none: infer them
+        self._records += len(rejected) + len(numbers)  # counted as _infer counts them
+        if clean:
+            table, rejected = self._finish(table, invalid, numbers, guess, False, rejected)
+        else:
+            table = guess.empty_table()
+        return table, rejected, n_lines
+
+    def _parsed_key(self) -> tuple:
+        st = os.stat(self.source.path)
+        return (str(Path(self.source.path).resolve()), st.st_size, st.st_mtime_ns,
+                self.delimiter, self.encoding, tuple(self.missing_tokens), self.block_bytes,
+                tuple(sorted(self.column_types.items())))
+
+    def _kept_blocks(self, target: pa.Schema) -> ParsedBlocks | None:
+        """The first pass's rows of this file, if it was typed in this process and they
+        were parsed with ``target``'s types."""
+        if not _PARSED:
+            return None
+        try:
+            parsed = _PARSED.get(self._parsed_key())
+        except OSError:
+            return None
+        return parsed if parsed is not None and parsed.schema.equals(target) else None
 
     def holds_numbers(self, column: str) -> bool:
         """Whether the first block's ``column`` is empty or holds at least one number."""
@@ -340,16 +525,18 @@ class CsvReader:
                 "raw": raw.rstrip(b"\r").decode(self.encoding, errors="backslashreplace")
                 if self.utf8 else _decode_lenient(raw.rstrip(b"\r"), self.encoding)}
 
-    def _clean(self, block, first_line: int
+    def _clean(self, block, first_line: int, quick: bool = False
                ) -> tuple[bytes, np.ndarray, list[dict], int]:
         """UTF-8 text of the block's readable lines, their physical line numbers, the lines
         set aside, and the block's count of physical lines. Cheap whole-block checks first;
-        the per-line pass only for a block that fails one."""
+        the per-line pass only for a block that fails one.
+
+        ``quick``: for a block without quotes, number its lines as if none were empty (no
+        search for line ends); the caller asks again without ``quick`` when the rows parsed
+        are fewer than those numbers (pyarrow skips empty lines), and gets the same text."""
         if not block:
             return b"", np.zeros(0, dtype=np.int64), [], 0
         arr = np.frombuffer(block, dtype=np.uint8)
-        ends = np.flatnonzero(arr == 10)
-        n_lines = len(ends) + (0 if len(ends) and ends[-1] == len(arr) - 1 else 1)
         decoded_ok = True
         if not block.isascii():
             try:
@@ -357,9 +544,13 @@ class CsvReader:
                 if not self.utf8:
                     block = text.encode("utf-8")
                     arr = np.frombuffer(block, dtype=np.uint8)
-                    ends = np.flatnonzero(arr == 10)
             except UnicodeDecodeError:
                 decoded_ok = False
+        if quick and decoded_ok and block.find(QUOTE) < 0:
+            n_lines = int(np.count_nonzero(arr == 10)) + (0 if block.endswith(b"\n") else 1)
+            return block, first_line + np.arange(n_lines, dtype=np.int64), [], n_lines
+        ends = np.flatnonzero(arr == 10)
+        n_lines = len(ends) + (0 if len(ends) and ends[-1] == len(arr) - 1 else 1)
         odd_quotes = False
         if decoded_ok and block.find(QUOTE) >= 0:
             odd_quotes = bool(_odd_quote_lines(arr, ends).any())
@@ -377,6 +568,15 @@ class CsvReader:
             return block, numbers, [], n_lines
         clean, numbers, rejected = self._clean_lines(block, first_line, decoded_ok)
         return clean, numbers, rejected, n_lines
+
+    def _numbered_again(self, block, first_line: int, cleaned: tuple, rows: int) -> tuple:
+        """``cleaned`` from ``_clean(..., quick=True)``, or, when pyarrow read fewer ``rows``
+        than it numbered and the quick numbering was the one used (no quote, nothing set
+        aside), the block cleaned with its empty lines found: the same text, exact numbers."""
+        _, numbers, rejected, _ = cleaned
+        if rows == len(numbers) or rejected or block.find(QUOTE) >= 0:
+            return cleaned
+        return self._clean(block, first_line)
 
     def _clean_lines(self, block: bytes, first_line: int, decoded_ok: bool,
                      state_machine: bool = False):
@@ -450,10 +650,12 @@ class CsvReader:
 
     def _parse_block(self, block, first_line: int, target: pa.Schema
                      ) -> tuple[pa.Table, list[dict], int]:
-        clean, numbers, rejected, n_lines = self._clean(block, first_line)
+        clean, numbers, rejected, n_lines = self._clean(block, first_line, quick=True)
         if not clean:
             return target.empty_table(), rejected, n_lines
         table, invalid, cast_failed = self._read_typed(clean, target)
+        clean, numbers, rejected, n_lines = self._numbered_again(
+            block, first_line, (clean, numbers, rejected, n_lines), table.num_rows + len(invalid))
         if table.num_rows + len(invalid) != len(numbers):
             # A quote opened in the middle of a field swallowed later lines: find the lines
             # that leave a quote open with the exact rules, and read again without them.
@@ -540,6 +742,28 @@ class CsvReader:
             if block:
                 yield block
 
+    def _parsed_blocks(self, target: pa.Schema, where: list
+                       ) -> Iterator[tuple[pa.Table, list[dict], int]]:
+        """Each block's (rows, rows set aside, physical lines), in order: the first pass's
+        kept rows when they have ``target``'s types, else the text parsed now."""
+        kept = self._kept_blocks(target)
+        if kept is not None and kept.in_use.acquire(blocking=False):
+            try:
+                for table, rejected, n_lines, at in kept:
+                    where[0] = at
+                    yield table, rejected, n_lines
+            finally:
+                kept.in_use.release()
+            for key, value in list(_PARSED.items()):  # read in full: free its disk space
+                if value is kept:
+                    del _PARSED[key]
+            return
+        line = 2
+        for block in self._body_blocks(where):
+            table, rejected, n_lines = self.parse_block(block, line, target)
+            line += n_lines
+            yield table, rejected, n_lines
+
     def chunks(self, chunk_rows: int, start_chunk: int = 0, target: pa.Schema | None = None
                ) -> Iterator[Chunk]:
         target = target or self.schema
@@ -557,8 +781,7 @@ class CsvReader:
         # ending inside a block gets its share of it (Chunk.bytes_read).
         where, before = [0], 0
         try:
-            for block in self._body_blocks(where):
-                table, rejected, n_lines = self.parse_block(block, line, target)
+            for table, rejected, n_lines in self._parsed_blocks(target, where):
                 line += n_lines
                 per_row = (where[0] - before) / max(n_lines, 1)  # progress
                 before = where[0]
@@ -573,7 +796,7 @@ class CsvReader:
                                     bytes_read=int(where[0] - rest.num_rows * per_row))
                     pending_rejected = []
                     index += 1
-                    pending = [rest.combine_chunks()] if rest.num_rows else []
+                    pending = [rest] if rest.num_rows else []  # copied once, with its chunk
                     pending_rows = rest.num_rows
         except InputError:
             raise
