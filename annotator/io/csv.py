@@ -32,6 +32,7 @@ import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 
 from ..errors import ConfigError, InputError
+from .hashing import HashingFile
 from .missing import DEFAULT_MISSING_TOKENS
 from .readers import Chunk, Source
 
@@ -51,22 +52,25 @@ TYPE_BY_NAME = {
 _INT64_LIMIT = float(2 ** 63)
 
 
-def _open_binary(path: Path):
-    raw = open(path, "rb")
+def _open_binary(path: Path, raw=None):
+    """The file's bytes (decompressed for .gz); ``raw``: the file on disk, already open
+    (a HashingFile, which the decompressor leaves open)."""
+    raw = open(path, "rb") if raw is None else raw
     if path.name.lower().endswith(".gz"):
         return gzip.GzipFile(fileobj=raw, mode="rb")
     return raw
 
 
-def iter_line_blocks(path: Path, block_bytes: int, where: list | None = None
+def iter_line_blocks(path: Path, block_bytes: int, where: list | None = None, raw=None
                      ) -> Iterator[bytearray]:
     """Blocks of whole lines (each ends with a newline, except perhaps the last), read into
     a fresh buffer each (one copy from the file; pyarrow reads the buffer without another).
 
     ``where``: if given, ``where[0]`` is kept at the bytes of the file on disk read so far
     (of the compressed file for .gz), for progress (``Chunk.bytes_read``).
+    ``raw``: see :func:`_open_binary` (the reader's HashingFile, for the checksum).
     """
-    with _open_binary(path) as fh:
+    with _open_binary(path, raw) as fh:
         tail = b""
         while True:
             buf = bytearray(len(tail) + block_bytes)
@@ -174,6 +178,7 @@ class CsvReader:
         self.missing_tokens = list(missing_tokens)
         self.column_types = dict(column_types or {})
         self._delim_b = delimiter.encode()
+        self._hashing: HashingFile | None = None  # set by chunks()
         try:
             first, whole = _first_block(source.path, sample_bytes)
         except (OSError, EOFError, gzip.BadGzipFile) as exc:
@@ -528,11 +533,11 @@ class CsvReader:
             raise InputError(f"input {self.source.path}: cannot convert columns: {exc}") from exc
         return kept, sorted(bad_reason.items())
 
-    def _body_blocks(self, where: list | None = None) -> Iterator[bytearray]:
+    def _body_blocks(self, where: list | None = None, raw=None) -> Iterator[bytearray]:
         """The blocks after the header line (which may lack a newline); the first data line
-        is physical line 2. ``where``: see :func:`iter_line_blocks` (progress)."""
+        is physical line 2. ``where``, ``raw``: see :func:`iter_line_blocks`."""
         first = True
-        for block in iter_line_blocks(self.source.path, self.block_bytes, where):
+        for block in iter_line_blocks(self.source.path, self.block_bytes, where, raw):
             if first:
                 first = False
                 cut = block.find(b"\n")
@@ -557,7 +562,9 @@ class CsvReader:
         # ending inside a block gets its share of it (Chunk.bytes_read).
         where, before = [0], 0
         try:
-            for block in self._body_blocks(where):
+            # the checksum in the same pass (issue 17): the blocks are read through it
+            self._hashing = HashingFile(self.source.path)
+            for block in self._body_blocks(where, self._hashing):
                 table, rejected, n_lines = self.parse_block(block, line, target)
                 line += n_lines
                 per_row = (where[0] - before) / max(n_lines, 1)  # progress
@@ -584,6 +591,15 @@ class CsvReader:
             whole = pa.concat_tables(pending) if pending else target.empty_table()
             yield Chunk(self.source, index, whole.combine_chunks(), pending_rejected,
                         bytes_read=self.source.size_bytes)
+
+
+    def sha256(self) -> str:
+        """The SHA-256 of the file as on disk (compressed for .gz), hashed while the chunks
+        read it; a resumed run reads the chunks it skips too (to find their lines), so only
+        what follows the last line read is read here."""
+        if self._hashing is None:  # no chunk was asked for
+            self._hashing = HashingFile(self.source.path)
+        return self._hashing.sha256()
 
 
 def _decode_lenient(raw: bytes, encoding: str) -> str:

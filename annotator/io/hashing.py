@@ -1,0 +1,148 @@
+"""The SHA-256 of an input file, computed from the bytes its reader reads (issue 17).
+
+The manifest records the plain SHA-256 (FIPS 180-4) of every input file, so that
+``sha256sum`` verifies it. A :class:`HashingFile` is the reader's file: it keeps a SHA-256 and
+the offset it has hashed up to, and so hashes the file while the reader reads it, instead of
+a second read of the whole file.
+
+* A read that starts at that offset advances the hash from the same buffer.
+* A read that starts beyond it first reads and hashes the gap (bytes the reader skips, e.g.
+  the rows a resumed run does not read again, or a Parquet file's magic number), so every
+  byte is still read in order, once.
+* A read behind it is served without hashing (those bytes are in the digest already).
+* :meth:`HashingFile.sha256` reads and hashes whatever the reader left unread (the end of
+  the file, a Parquet footer, chunks a resumed run skipped at the end), also after
+  :meth:`close`, so the digest is always that of the whole file; then the file is closed.
+
+``bytes_read`` counts every byte read from the file through the wrapper (the tests check it
+is the file's size: nothing is read twice).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import os
+import threading
+from pathlib import Path
+
+#: bytes per read when the wrapper reads by itself (gaps and the end of the file)
+BLOCK = 8 << 20
+
+
+class HashingFile(io.RawIOBase):
+    """A read-only binary file that hashes what is read through it (see the module)."""
+
+    def __init__(self, path: str | os.PathLike):
+        super().__init__()
+        self.path = Path(path)
+        self.name = str(path)
+        self._fh = open(self.path, "rb", buffering=0)
+        self._sha = hashlib.sha256()
+        self._hashed = 0  # bytes [0, _hashed) are in the digest
+        self._pos = 0  # the position the next read starts at
+        self._os_pos = 0  # where the operating system's file position is
+        self._digest: str | None = None
+        self._lock = threading.Lock()  # pyarrow may read from its own threads
+        self.bytes_read = 0
+
+    # -- io.RawIOBase ---------------------------------------------------------------
+    def readable(self) -> bool:
+        return True
+
+    def seekable(self) -> bool:
+        return True
+
+    def tell(self) -> int:
+        return self._pos
+
+    def seek(self, offset: int, whence: int = io.SEEK_SET) -> int:
+        if whence == io.SEEK_SET:
+            pos = offset
+        elif whence == io.SEEK_CUR:
+            pos = self._pos + offset
+        elif whence == io.SEEK_END:
+            pos = os.fstat(self._fh.fileno()).st_size + offset
+        else:
+            raise ValueError(f"invalid whence {whence}")
+        if pos < 0:
+            raise OSError(f"{self.path}: negative seek position {pos}")
+        self._pos = pos
+        return pos
+
+    def readinto(self, buffer) -> int:
+        view = memoryview(buffer).cast("B")
+        with self._lock:
+            if self._pos > self._hashed:
+                self._hash_up_to(self._pos)
+            n = self._read_into(self._pos, view)
+            self._advance(self._pos, view[:n])
+            self._pos += n
+            return n
+
+    def read(self, size: int = -1) -> bytes:
+        if size is None or size < 0:
+            return self.readall()
+        buf = bytearray(size)
+        n = self.readinto(buf)
+        del buf[n:]
+        return bytes(buf) if n < 4096 else buf  # pyarrow takes any bytes-like object
+
+    def readall(self) -> bytes:
+        parts = []
+        while piece := self.read(BLOCK):
+            parts.append(piece)
+        return b"".join(parts)
+
+    def close(self) -> None:
+        if not self.closed:
+            self._fh.close()
+        super().close()
+
+    # -- the digest -----------------------------------------------------------------
+    def sha256(self) -> str:
+        """The hex SHA-256 of the whole file: what was not read yet is read and hashed now
+        (the file is opened again if the reader closed it), and the file is closed."""
+        with self._lock:
+            if self._digest is None:
+                if self._fh.closed:
+                    self._fh = open(self.path, "rb", buffering=0)
+                    self._os_pos = 0
+                try:
+                    self._hash_up_to(None)
+                finally:
+                    self._fh.close()
+                self._digest = self._sha.hexdigest()
+        self.close()
+        return self._digest
+
+    # -- internals (called with the lock held) --------------------------------------
+    def _read_into(self, pos: int, view: memoryview) -> int:
+        if pos != self._os_pos:
+            self._fh.seek(pos)
+        done = 0
+        while done < len(view):  # a raw read may return less than asked
+            n = self._fh.readinto(view[done:])
+            if not n:
+                break
+            done += n
+        self._os_pos = pos + done
+        self.bytes_read += done
+        return done
+
+    def _advance(self, pos: int, data: memoryview) -> None:
+        """Hash the part of ``data`` (read at ``pos <= _hashed``) beyond ``_hashed``."""
+        end = pos + len(data)
+        if end > self._hashed:
+            self._sha.update(data[self._hashed - pos:])
+            self._hashed = end
+
+    def _hash_up_to(self, until: int | None) -> None:
+        """Read and hash ``[_hashed, until)`` (to the end of the file for ``None``)."""
+        buf = memoryview(bytearray(BLOCK))
+        while until is None or self._hashed < until:
+            want = BLOCK if until is None else min(BLOCK, until - self._hashed)
+            n = self._read_into(self._hashed, buf[:want])
+            if not n:
+                return
+            self._advance(self._hashed, buf[:n])
