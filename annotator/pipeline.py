@@ -10,7 +10,6 @@ from dataclasses import dataclass
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
 
 from .api import Batch
 from .arrow_numpy import from_numpy, string_array, to_numpy
@@ -137,11 +136,14 @@ class Pipeline:
         if n == 0:
             return string_array([]), counts
         flagged = np.flatnonzero(bits.any(axis=0))
+        if not len(flagged):  # a clean batch: n empty strings, straight from their offsets
+            return pa.Array.from_buffers(pa.string(), n, [None, pa.py_buffer(
+                np.zeros(n + 1, dtype=np.int32)), pa.py_buffer(b"")]), counts
         indices = np.zeros(n, dtype=np.int32)
         combos: list[tuple[int, ...]] = [(0,) * bits.shape[0]]
         if len(flagged):
             if bits.shape[0] == 1:
-                encoded = pc.dictionary_encode(from_numpy(bits[0][flagged]))
+                encoded = from_numpy(bits[0][flagged]).dictionary_encode()
                 uniques = to_numpy(encoded.dictionary)
                 combos += [(int(c),) for c in uniques]
                 indices[flagged] = to_numpy(encoded.indices) + 1

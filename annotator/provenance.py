@@ -9,6 +9,7 @@ is stored as JSON under ``annotator.provenance``.
 from __future__ import annotations
 
 import datetime as _dt
+import functools
 import hashlib
 import json
 import os
@@ -94,7 +95,14 @@ def votable_header(schema: pa.Schema, specs: dict, *, table_name: str, descripti
 
 def tool_versions() -> dict:
     """Versions of the libraries a run depends on, read from their installed metadata
-    (importing pandas, scipy and duckdb only to ask would cost most of a small run's start-up)."""
+    (importing pandas, scipy and duckdb only to ask would cost most of a small run's start-up).
+    Read once per process (every part and the manifest ask): the code a process runs does
+    not change under it. A copy, so callers may change it."""
+    return dict(_tool_versions())
+
+
+@functools.lru_cache(maxsize=1)
+def _tool_versions() -> dict:
     from importlib.metadata import PackageNotFoundError, version
 
     versions = {"annotator": __version__, "python": platform.python_version()}

@@ -43,8 +43,14 @@ def load_registry(*, extra_plugins=(), autoload: bool | None = None) -> pluggy.P
     pm.annotator_origins = origins  # plugin name -> "distribution version", for listings
     if autoload is None:
         autoload = os.environ.get(AUTOLOAD_ENV, "") in ("", "0")
+    # ep.dist.name and .version parse the distribution's METADATA file each time they are
+    # asked (importlib.metadata caches nothing): ask once per distribution.
+    named: dict[int, tuple[str, str]] = {}
     for ep in md.entry_points(group=ENTRY_POINT_GROUP):
-        dist = ep.dist.name if ep.dist is not None else ""
+        if ep.dist is not None and id(ep.dist) not in named:
+            meta = ep.dist.metadata
+            named[id(ep.dist)] = (meta["Name"], meta["Version"])
+        dist, dist_version = named[id(ep.dist)] if ep.dist is not None else ("", "")
         if not autoload and dist != BUILTIN_DISTRIBUTION:
             continue
         if pm.get_plugin(ep.name) is not None:
@@ -57,7 +63,7 @@ def load_registry(*, extra_plugins=(), autoload: bool | None = None) -> pluggy.P
                 f"failed to load: {exc}"
             ) from exc
         pm.register(plugin, name=ep.name)
-        origins[ep.name] = f"{dist} {ep.dist.version}" if ep.dist is not None else "unknown"
+        origins[ep.name] = f"{dist} {dist_version}" if ep.dist is not None else "unknown"
 
     for plugin in extra_plugins:
         pm.register(plugin)
