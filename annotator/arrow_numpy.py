@@ -78,7 +78,8 @@ def from_numpy(values, type: pa.DataType | None = None, *, mask=None,
                nan_is_null: bool = False) -> pa.Array:
     """``pa.array(values, type=type, mask=mask, from_pandas=nan_is_null)`` for a 1-D numpy
     array of booleans or numbers (zero copy where pyarrow is zero copy: the array keeps
-    ``values`` alive, so do not change them afterwards)."""
+    ``values`` alive, so do not change them afterwards). As in ``pa.array``, ``mask`` wins
+    over ``nan_is_null``: with a mask, NaN stays a value."""
     values = np.asarray(values)
     native = _ARROW.get(values.dtype.newbyteorder("=")) if values.dtype.kind in "biuf" else None
     if values.ndim != 1 or native is None or (type is not None and type not in _NUMPY
@@ -95,9 +96,8 @@ def from_numpy(values, type: pa.DataType | None = None, *, mask=None,
             raise TypeError("Mask must be boolean dtype")
         if null.shape != values.shape:
             raise ValueError("Mask is a different length from sequence being converted")
-    if nan_is_null and values.dtype.kind == "f":
-        nan = np.isnan(values)
-        null = nan if null is None else (null | nan)
+    if nan_is_null and null is None and values.dtype.kind == "f":
+        null = np.isnan(values)  # with a mask, pa.array keeps NaN a value: so here too
     null_count = 0 if null is None else int(np.count_nonzero(null))
     validity = pa.py_buffer(np.packbits(~null, bitorder="little")) if null_count else None
     if native == pa.bool_():
