@@ -44,6 +44,7 @@ class HashingFile(io.RawIOBase):
         self._os_pos = 0  # where the operating system's file position is
         self._digest: str | None = None
         self._lock = threading.Lock()  # pyarrow may read from its own threads
+        self._held: tuple[int, int, memoryview] | None = None  # see hold()
         self.bytes_read = 0
 
     # -- io.RawIOBase ---------------------------------------------------------------
@@ -83,6 +84,11 @@ class HashingFile(io.RawIOBase):
     def read(self, size: int = -1) -> bytes:
         if size is None or size < 0:
             return self.readall()
+        held = self._held
+        if held is not None and held[0] <= self._pos and self._pos + size <= held[1]:
+            start = self._pos - held[0]
+            self._pos += size
+            return held[2][start:start + size]  # no copy: pyarrow takes any buffer
         buf = bytearray(size)
         n = self.readinto(buf)
         del buf[n:]
@@ -98,6 +104,23 @@ class HashingFile(io.RawIOBase):
         if not self.closed:
             self._fh.close()
         super().close()
+
+    def hold(self, start: int, end: int) -> None:
+        """Read ``[start, end)`` now, in one read (hashed in order, gap first), and serve
+        reads that fall inside it from memory until :meth:`release`: e.g. a Parquet row
+        group, whose column chunks pyarrow's threads then read in any order, with no byte
+        read twice. Memory: that range."""
+        with self._lock:
+            if start > self._hashed:
+                self._hash_up_to(start)
+            buf = memoryview(bytearray(max(end - start, 0)))
+            n = self._read_into(start, buf)
+            self._advance(start, buf[:n])
+            self._held = (start, start + n, buf[:n])
+
+    def release(self) -> None:
+        """Forget the range :meth:`hold` read."""
+        self._held = None
 
     # -- the digest -----------------------------------------------------------------
     def sha256(self) -> str:

@@ -14,8 +14,9 @@
   the row groups through a :class:`~annotator.io.hashing.HashingFile`, which hashes the bytes
   as they go by; :meth:`ParquetReader.sha256` adds what was not read (the footer, and on
   ``--resume`` nothing else: skipped row groups are hashed when the first read passes them).
-  The row groups are decoded in one thread, so that pyarrow reads the column chunks in file
-  order and no byte is read twice.
+  Each row group's bytes are read in one read (``HashingFile.hold``) and pyarrow's threads
+  decode its column chunks from that copy, in any order, so no byte is read twice; memory:
+  one row group's compressed bytes.
 """
 
 from __future__ import annotations
@@ -85,12 +86,11 @@ class ParquetReader:
                 continue
             skip = max(start_row - seen, 0)
             try:
-                # One thread: the column chunks are then read in file order, so each byte is
-                # read once (pyarrow's threads read them out of order, and the hashing file
-                # serves a read behind what it hashed by reading those bytes again). Measured
-                # no slower: the reader thread is not what a run waits for.
-                for batch in self._file.iter_batches(batch_size=batch_rows, row_groups=[g],
-                                                     use_threads=self._hashing is None):
+                if self._hashing is not None:
+                    # the row group's bytes in one read, hashed in order: pyarrow's threads
+                    # read its column chunks in any order, so they read from this copy
+                    self._hashing.hold(*_byte_range(meta.row_group(g)))
+                for batch in self._file.iter_batches(batch_size=batch_rows, row_groups=[g]):
                     if skip >= batch.num_rows:
                         skip -= batch.num_rows
                         continue
@@ -104,6 +104,9 @@ class ParquetReader:
                     f"input {self.source.path}: unreadable Parquet data in rows {seen + 1} to "
                     f"{seen + n} (row group {g}: {why}); the file is refused, replace it with a "
                     f"good copy and rerun with --resume") from exc
+            finally:
+                if self._hashing is not None:
+                    self._hashing.release()
             seen += n
 
     def chunks(self, chunk_rows: int, start_chunk: int = 0, target: pa.Schema | None = None
@@ -139,3 +142,16 @@ class ParquetReader:
                 f"input {self.source.path}: columns do not match the first input's types "
                 f"({exc})"
             ) from exc
+
+
+def _byte_range(row_group) -> tuple[int, int]:
+    """Where a row group's column chunks lie in the file: [first byte, end)."""
+    start, end = None, 0
+    for i in range(row_group.num_columns):
+        col = row_group.column(i)
+        first = col.data_page_offset
+        if col.has_dictionary_page and col.dictionary_page_offset:  # some writers leave 0
+            first = min(first, col.dictionary_page_offset)
+        start = first if start is None else min(start, first)
+        end = max(end, first + col.total_compressed_size)
+    return start or 0, end

@@ -93,6 +93,24 @@ def test_forward_reads_and_gaps_read_each_byte_once(tmp_path):
     assert h.bytes_read == len(data) + 20
 
 
+def test_a_held_range_serves_reads_in_any_order_from_one_read(tmp_path):
+    """What the Parquet reader does per row group: hold its bytes, let pyarrow's threads read
+    its column chunks in any order."""
+    data = np.random.default_rng(8).bytes(50_000)
+    path = tmp_path / "blob"
+    path.write_bytes(data)
+    h = HashingFile(path)
+    h.hold(100, 30_000)  # [0, 100) is a gap: read and hashed first
+    for pos in (20_000, 100, 5_000, 29_990):
+        h.seek(pos)
+        assert bytes(h.read(10)) == data[pos:pos + 10]
+    h.release()
+    h.seek(29_995)
+    assert bytes(h.read(10)) == data[29_995:30_005]  # across the end: from the file
+    assert h.sha256() == hashlib.sha256(data).hexdigest()
+    assert h.bytes_read == len(data) + 5  # only the 5 bytes behind, read again
+
+
 def test_a_column_subset_read_through_pyarrow(tmp_path, catalogue_table):
     """pyarrow reads only some column chunks; the gaps between them are hashed in order
     (in one thread, as the reader does: pyarrow's threads would read chunks out of order)."""
