@@ -143,6 +143,9 @@ def part_metadata(plan, input_metadata: dict | None = None) -> dict[bytes, bytes
 
 
 def file_sha256(path: Path, bufsize: int = 8 << 20) -> str:
+    """The SHA-256 of a file, by a read of its own: only the Dask engine still needs it, for
+    Parquet and FITS inputs its workers read in parallel byte ranges (the readers otherwise
+    hash while reading, ``annotator.io.hashing``)."""
     h = hashlib.sha256()
     with open(path, "rb") as fh:
         while chunk := fh.read(bufsize):
