@@ -6,6 +6,7 @@ output schema, so it pickles small and is shipped as-is to Dask workers.
 
 from __future__ import annotations
 
+import sys
 from dataclasses import dataclass
 
 import numpy as np
@@ -168,7 +169,8 @@ def _to_arrow(values, spec, n: int, owner: str) -> pa.Array:
     try:
         if isinstance(values, (pa.Array, pa.ChunkedArray)):
             arr = values
-        elif isinstance(values, np.ma.MaskedArray):
+        elif "numpy.ma" in sys.modules and isinstance(values, np.ma.MaskedArray):
+            # (np.ma imports numpy.ma, ~20 ms: without it nothing can be a MaskedArray)
             arr = from_numpy(np.ma.getdata(values), spec.type, mask=np.ma.getmaskarray(values))
         else:
             values = np.asarray(values)

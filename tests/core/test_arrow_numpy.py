@@ -104,7 +104,7 @@ import json, sys
 from annotator.cli import main
 rc = main(["run", sys.argv[1], "--out", sys.argv[2], "--quiet"])
 heavy = ["pandas", "scipy.special", "pyarrow.compute", "annotator.io.csv", "duckdb",
-         "astropy"]
+         "astropy", "numpy.ma"]
 print(json.dumps({"rc": rc, "imported": [m for m in heavy if m in sys.modules],
                   "ufunc": "scipy.special._ufuncs" in sys.modules}))
 """
@@ -139,6 +139,7 @@ def test_a_run_with_flagged_rows_still_imports_no_pandas(tmp_path):
     got = _imports_of_a_run(tmp_path, table)
     assert got["rc"] == 0
     assert "pandas" not in got["imported"] and "scipy.special" not in got["imported"]
+    assert "numpy.ma" not in got["imported"]  # reachable's nulls without a MaskedArray
 
 
 def test_ndtr_is_scipys_own_ufunc_and_scipy_special_still_imports():
@@ -153,3 +154,21 @@ def test_ndtr_is_scipys_own_ufunc_and_scipy_special_still_imports():
     proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                           timeout=60)
     assert proc.returncode == 0 and proc.stdout.strip() == "ok", proc.stderr
+
+
+def test_an_annotators_masked_array_or_arrow_array_becomes_the_column_with_its_nulls():
+    """The pipeline looks for numpy.ma.MaskedArray only once numpy.ma is loaded (so a run
+    whose annotators return none never imports it); one returned is still honoured."""
+    import numpy.ma  # noqa: F401  (an annotator returning a MaskedArray has loaded it)
+
+    from annotator.columns import ColumnSpec
+    from annotator.pipeline import _to_arrow
+
+    spec = ColumnSpec("x", pa.float64(), None, "meta.code", "x")
+    values = np.ma.MaskedArray([1.0, np.nan, 3.0], mask=[False, False, True])
+    got = _to_arrow(values, spec, 3, "test")
+    assert got.type == pa.float64() and got.is_null().to_pylist() == [False, False, True]
+    assert got[0].as_py() == 1.0 and np.isnan(got[1].as_py())  # NaN stays a value
+    flag = ColumnSpec("b", pa.bool_(), None, "meta.code", "b")
+    arrow = from_numpy(np.array([True, False, True]), pa.bool_(), mask=np.array([0, 1, 0], bool))
+    assert _to_arrow(arrow, flag, 3, "test").equals(pa.array([True, None, True]))
