@@ -103,14 +103,11 @@ def tool_versions() -> dict:
 
 @functools.lru_cache(maxsize=1)
 def _tool_versions() -> dict:
-    from importlib.metadata import PackageNotFoundError, version
+    from .entry_points import version  # importlib.metadata's answers, without importing it
 
     versions = {"annotator": __version__, "python": platform.python_version()}
     for name in ("numpy", "scipy", "pyarrow", "pandas", "pluggy", "duckdb"):
-        try:
-            versions[name] = version(name)
-        except PackageNotFoundError:  # pragma: no cover - every one is a dependency
-            versions[name] = "not installed"
+        versions[name] = version(name) or "not installed"
     return versions
 
 

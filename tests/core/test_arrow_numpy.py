@@ -104,7 +104,7 @@ import json, sys
 from annotator.cli import main
 rc = main(["run", sys.argv[1], "--out", sys.argv[2], "--quiet"])
 heavy = ["pandas", "scipy.special", "pyarrow.compute", "annotator.io.csv", "duckdb",
-         "astropy", "numpy.ma"]
+         "astropy", "numpy.ma", "importlib.metadata"]
 print(json.dumps({"rc": rc, "imported": [m for m in heavy if m in sys.modules],
                   "ufunc": "scipy.special._ufuncs" in sys.modules}))
 """
