@@ -172,3 +172,32 @@ def test_an_annotators_masked_array_or_arrow_array_becomes_the_column_with_its_n
     flag = ColumnSpec("b", pa.bool_(), None, "meta.code", "b")
     arrow = from_numpy(np.array([True, False, True]), pa.bool_(), mask=np.array([0, 1, 0], bool))
     assert _to_arrow(arrow, flag, 3, "test").equals(pa.array([True, None, True]))
+
+
+ENV_PROBE = r"""
+import json, os, sys
+import annotator
+before = "numpy" in sys.modules  # the package alone imports no numpy (its API is lazy)
+import annotator.cli
+from annotator import Annotator, ColumnSpec, hookimpl  # still importable from the package
+print(json.dumps({"numpy_before_cli": before,
+                  "timeout": os.environ.get("OPENBLAS_THREAD_TIMEOUT")}))
+"""
+
+
+@pytest.mark.parametrize("given", [None, "28"])
+def test_the_command_line_sets_openblas_thread_timeout_before_numpy_loads(given):
+    """OpenBLAS reads OPENBLAS_THREAD_TIMEOUT once, when numpy loads it: the command line
+    must set it before any numpy import (else its threads spin ~0.1 s each at start-up);
+    a value the user set is kept."""
+    import os
+
+    env = {k: v for k, v in os.environ.items() if k != "OPENBLAS_THREAD_TIMEOUT"}
+    if given is not None:
+        env["OPENBLAS_THREAD_TIMEOUT"] = given
+    proc = subprocess.run([sys.executable, "-c", ENV_PROBE], capture_output=True, text=True,
+                          timeout=120, env=env)
+    assert proc.returncode == 0, proc.stderr
+    got = json.loads(proc.stdout.strip().splitlines()[-1])
+    assert got["numpy_before_cli"] is False
+    assert got["timeout"] == (given or "20")
