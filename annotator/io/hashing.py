@@ -16,6 +16,12 @@ a second read of the whole file.
 
 ``bytes_read`` counts every byte read from the file through the wrapper (the tests check it
 is the file's size: nothing is read twice).
+
+The hashing itself runs in a thread of its own, fed in file order (``hashlib`` releases the
+interpreter lock while it hashes): the reader's thread reads and decodes while another core
+hashes what it read, as the previous separate second read did, without reading the file
+again. At most :data:`QUEUED` buffers wait to be hashed (the reader then waits); a buffer the
+caller owns (``readinto``) is copied first. ``sha256()`` and ``close()`` wait for the thread.
 """
 
 from __future__ import annotations
@@ -23,11 +29,14 @@ from __future__ import annotations
 import hashlib
 import io
 import os
+import queue
 import threading
 from pathlib import Path
 
 #: bytes per read when the wrapper reads by itself (gaps and the end of the file)
 BLOCK = 8 << 20
+#: buffers at most waiting for the hashing thread
+QUEUED = 2
 
 
 class HashingFile(io.RawIOBase):
@@ -45,6 +54,9 @@ class HashingFile(io.RawIOBase):
         self._digest: str | None = None
         self._lock = threading.Lock()  # pyarrow may read from its own threads
         self._held: tuple[int, int, memoryview] | None = None  # see hold()
+        self._queue: queue.Queue | None = None  # to the hashing thread, while it runs
+        self._hasher: threading.Thread | None = None
+        self._finishing = False  # sha256() runs: hash in the caller's thread
         self.bytes_read = 0
 
     # -- io.RawIOBase ---------------------------------------------------------------
@@ -77,7 +89,7 @@ class HashingFile(io.RawIOBase):
             if self._pos > self._hashed:
                 self._hash_up_to(self._pos)
             n = self._read_into(self._pos, view)
-            self._advance(self._pos, view[:n])
+            self._advance(self._pos, view[:n], owned=False)  # the caller may reuse it
             self._pos += n
             return n
 
@@ -101,6 +113,7 @@ class HashingFile(io.RawIOBase):
         return b"".join(parts)
 
     def close(self) -> None:
+        self._stop_hasher()
         if not self.closed:
             self._fh.close()
         super().close()
@@ -127,6 +140,8 @@ class HashingFile(io.RawIOBase):
         """The hex SHA-256 of the whole file: what was not read yet is read and hashed now
         (the file is opened again if the reader closed it), and the file is closed."""
         with self._lock:
+            self._finishing = True
+            self._stop_hasher()  # what it was given is in the digest; the rest is hashed here
             if self._digest is None:
                 if self._fh.closed:
                     self._fh = open(self.path, "rb", buffering=0)
@@ -153,19 +168,44 @@ class HashingFile(io.RawIOBase):
         self.bytes_read += done
         return done
 
-    def _advance(self, pos: int, data: memoryview) -> None:
-        """Hash the part of ``data`` (read at ``pos <= _hashed``) beyond ``_hashed``."""
+    def _advance(self, pos: int, data: memoryview, owned: bool = True) -> None:
+        """Hash the part of ``data`` (read at ``pos <= _hashed``) beyond ``_hashed``: in the
+        hashing thread while the file is open (a copy unless ``owned``: no one writes into
+        ``data`` afterwards), else here."""
         end = pos + len(data)
         if end > self._hashed:
-            self._sha.update(data[self._hashed - pos:])
+            new = data[self._hashed - pos:]
+            if self._finishing:
+                self._sha.update(new)  # sha256(): the rest, in this thread
+            else:
+                if self._hasher is None:
+                    self._queue = queue.Queue(maxsize=QUEUED)
+                    self._hasher = threading.Thread(target=_hash_from, args=(self._sha,
+                                                                             self._queue),
+                                                    name="annotator-input-hash", daemon=True)
+                    self._hasher.start()
+                self._queue.put(new if owned else bytes(new))
             self._hashed = end
+
+    def _stop_hasher(self) -> None:
+        """Wait until the hashing thread has hashed all it was given, and end it."""
+        if self._hasher is not None:
+            self._queue.put(None)
+            self._hasher.join()
+            self._hasher = self._queue = None
 
     def _hash_up_to(self, until: int | None) -> None:
         """Read and hash ``[_hashed, until)`` (to the end of the file for ``None``)."""
-        buf = memoryview(bytearray(BLOCK))
         while until is None or self._hashed < until:
             want = BLOCK if until is None else min(BLOCK, until - self._hashed)
-            n = self._read_into(self._hashed, buf[:want])
+            buf = memoryview(bytearray(want))  # a new one each time: the thread may hash it
+            n = self._read_into(self._hashed, buf)
             if not n:
                 return
             self._advance(self._hashed, buf[:n])
+
+
+def _hash_from(sha, pending: queue.Queue) -> None:
+    """The hashing thread: ``sha.update`` with each buffer in turn, until ``None``."""
+    while (data := pending.get()) is not None:
+        sha.update(data)

@@ -77,6 +77,44 @@ def test_any_pattern_of_reads_gives_the_whole_files_sha256(tmp_path):
         assert h.closed
 
 
+def test_hashed_in_a_thread_of_its_own_in_order_even_from_a_reused_buffer(tmp_path,
+                                                                           monkeypatch):
+    """The hashing thread gets the buffers in file order, at most QUEUED waiting; a buffer
+    the caller owns (readinto, then overwritten at once, as io.BufferedReader does) is
+    copied before it is queued."""
+    import threading
+
+    import annotator.io.hashing as hashing
+
+    monkeypatch.setattr(hashing, "BLOCK", 4096)  # many gap blocks
+    data = np.random.default_rng(6).bytes(200_000)
+    path = tmp_path / "blob"
+    path.write_bytes(data)
+    h = HashingFile(path)
+    buf = bytearray(1000)
+    for pos in range(0, 60_000, 1000):
+        assert h.readinto(buf) == 1000 and bytes(buf) == data[pos:pos + 1000]
+        buf[:] = b"x" * 1000  # the caller reuses its buffer at once
+    h.seek(150_000)  # a gap of many blocks, queued in order
+    assert bytes(h.read(10)) == data[150_000:150_010]
+    assert h._hasher is not None and h._hasher.name == "annotator-input-hash"
+    assert h._hasher is not threading.current_thread()
+    assert h.sha256() == hashlib.sha256(data).hexdigest()
+    assert h._hasher is None  # ended by sha256()
+    assert h.bytes_read == len(data)
+
+
+def test_close_ends_the_hashing_thread(tmp_path):
+    path = tmp_path / "blob"
+    path.write_bytes(b"abc" * 10_000)
+    h = HashingFile(path)
+    h.read(100)
+    thread = h._hasher
+    h.close()
+    assert not thread.is_alive() and h._hasher is None
+    assert h.sha256() == hashlib.sha256(path.read_bytes()).hexdigest()
+
+
 def test_forward_reads_and_gaps_read_each_byte_once(tmp_path):
     data = bytes(range(256)) * 1000
     path = tmp_path / "blob"
