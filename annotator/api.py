@@ -24,6 +24,7 @@ from typing import Any, ClassVar
 import numpy as np
 import pyarrow as pa
 
+from .arrow_numpy import to_numpy
 from .columns import ColumnSpec
 from .errors import ConfigError, PathRefusedError
 
@@ -274,6 +275,4 @@ def _as_float(arr: pa.Array) -> np.ndarray:
             arr = arr.cast(pa.float64())
         else:
             raise TypeError(f"column of type {arr.type} is not numeric")
-    if isinstance(arr, pa.ChunkedArray):
-        arr = arr.combine_chunks()
-    return arr.to_numpy(zero_copy_only=False)
+    return to_numpy(arr)  # not arr.to_numpy(): that imports pandas (annotator.arrow_numpy)

@@ -15,9 +15,19 @@ import importlib
 import os
 import sys
 
-from . import __version__
-from .commands import COMMANDS
-from .errors import UserError
+# OpenBLAS (numpy's, and scipy's own copy) starts its threads when the library loads and
+# they spin for 2^28 cycles (~0.1 s each) before they sleep: ~0.15-0.2 s of CPU taken from
+# every command, most of a small run's, though a run makes no BLAS call before the redshift
+# posteriors' matrix products. 2^20 cycles (~0.4 ms) keeps them spinning between close calls
+# and no longer; the threads stay (those products keep both cores). Read when OpenBLAS loads,
+# so set before numpy is imported (the package imports it only on use); a value the user
+# set is kept. Inherited by the processes the command starts (service and Dask workers).
+if "numpy" not in sys.modules:
+    os.environ.setdefault("OPENBLAS_THREAD_TIMEOUT", "20")
+
+from . import __version__  # noqa: E402
+from .commands import COMMANDS  # noqa: E402
+from .errors import UserError  # noqa: E402
 
 
 def _command_module(name: str):

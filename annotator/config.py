@@ -227,9 +227,10 @@ def job_from_mapping(
         raise ConfigError(f"[input].hdu: expected an HDU number (0 or more) or an EXTNAME, "
                           f"got {hdu!r}")
     encoding = _expect(inp.get("encoding", "utf-8"), str, "[input].encoding", "a string")
-    from .io.csv import check_encoding
+    if encoding != "utf-8":  # the default needs no check (nor the CSV reader's import)
+        from .io.csv import check_encoding
 
-    encoding = check_encoding(encoding)
+        encoding = check_encoding(encoding)
     missing_tokens = parse_missing_tokens(inp["missing_tokens"]) if "missing_tokens" in inp \
         else DEFAULT_MISSING_TOKENS
     sentinels = parse_sentinels(inp.get("sentinels", {}))

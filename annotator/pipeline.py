@@ -6,13 +6,14 @@ output schema, so it pickles small and is shipped as-is to Dask workers.
 
 from __future__ import annotations
 
+import sys
 from dataclasses import dataclass
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
 
 from .api import Batch
+from .arrow_numpy import from_numpy, string_array, to_numpy
 from .columns import FLAGS_COLUMN
 from .errors import PluginError
 from .io.missing import apply_sentinels
@@ -134,16 +135,19 @@ class Pipeline:
         n = bits.shape[1]
         counts: dict[str, int] = {}
         if n == 0:
-            return pa.array([], type=pa.string()), counts
+            return string_array([]), counts
         flagged = np.flatnonzero(bits.any(axis=0))
+        if not len(flagged):  # a clean batch: n empty strings, straight from their offsets
+            return pa.Array.from_buffers(pa.string(), n, [None, pa.py_buffer(
+                np.zeros(n + 1, dtype=np.int32)), pa.py_buffer(b"")]), counts
         indices = np.zeros(n, dtype=np.int32)
         combos: list[tuple[int, ...]] = [(0,) * bits.shape[0]]
         if len(flagged):
             if bits.shape[0] == 1:
-                encoded = pc.dictionary_encode(pa.array(bits[0][flagged]))
-                uniques = encoded.dictionary.to_numpy()
+                encoded = from_numpy(bits[0][flagged]).dictionary_encode()
+                uniques = to_numpy(encoded.dictionary)
                 combos += [(int(c),) for c in uniques]
-                indices[flagged] = encoded.indices.to_numpy() + 1
+                indices[flagged] = to_numpy(encoded.indices) + 1
             else:  # more than 64 reasons: group whole rows of words (rare; sorts flagged rows)
                 rows = np.ascontiguousarray(bits[:, flagged].T)
                 uniques, inverse = np.unique(rows, axis=0, return_inverse=True)
@@ -156,8 +160,8 @@ class Pipeline:
             labels.append(FLAG_SEPARATOR.join(reasons))
             for r in reasons:
                 counts[r] = counts.get(r, 0) + int(count)
-        dictionary = pa.array(labels, type=pa.string())
-        arr = pa.DictionaryArray.from_arrays(pa.array(indices), dictionary)
+        dictionary = string_array(labels)
+        arr = pa.DictionaryArray.from_arrays(from_numpy(indices), dictionary)
         return arr.cast(FLAGS_COLUMN.type), counts
 
 
@@ -165,15 +169,12 @@ def _to_arrow(values, spec, n: int, owner: str) -> pa.Array:
     try:
         if isinstance(values, (pa.Array, pa.ChunkedArray)):
             arr = values
-        elif isinstance(values, np.ma.MaskedArray):
-            arr = pa.array(np.ma.getdata(values), mask=np.ma.getmaskarray(values),
-                           type=spec.type)
+        elif "numpy.ma" in sys.modules and isinstance(values, np.ma.MaskedArray):
+            # (np.ma imports numpy.ma, ~20 ms: without it nothing can be a MaskedArray)
+            arr = from_numpy(np.ma.getdata(values), spec.type, mask=np.ma.getmaskarray(values))
         else:
             values = np.asarray(values)
-            if values.dtype.kind == "f":
-                arr = pa.array(values, type=spec.type, from_pandas=True)
-            else:
-                arr = pa.array(values, type=spec.type)
+            arr = from_numpy(values, spec.type, nan_is_null=values.dtype.kind == "f")
         if arr.type != spec.type:
             arr = arr.cast(spec.type)
     except (pa.ArrowInvalid, pa.ArrowTypeError, TypeError, ValueError) as exc:

@@ -17,7 +17,6 @@ from .api import Annotator, Setup
 from .columns import FLAGS_COLUMN, ColumnSpec
 from .config import Job
 from .errors import ConfigError, InputError, PlanError
-from .io.csv import widest
 from .io.missing import SENTINEL_FLAG_PREFIX, check_sentinels, sentinel_flag
 from .io.readers import Source, expand_inputs, open_reader
 from .registry import RegisteredAnnotator, collect_annotators, load_registry
@@ -357,6 +356,8 @@ def build_plan(job: Job, pm=None) -> Plan:
     typed = [r.resolve_types(numeric) for r in readers if hasattr(r, "resolve_types")] \
         if hasattr(readers[0], "resolve_types") else []
     if typed:
+        from .io.csv import widest  # CSV only: a Parquet run need not import the CSV reader
+
         fields = {f.name: f.type for f in typed[0]}
         for other in typed[1:]:
             for f in other:

@@ -9,6 +9,7 @@ is stored as JSON under ``annotator.provenance``.
 from __future__ import annotations
 
 import datetime as _dt
+import functools
 import hashlib
 import json
 import os
@@ -94,15 +95,19 @@ def votable_header(schema: pa.Schema, specs: dict, *, table_name: str, descripti
 
 def tool_versions() -> dict:
     """Versions of the libraries a run depends on, read from their installed metadata
-    (importing pandas, scipy and duckdb only to ask would cost most of a small run's start-up)."""
-    from importlib.metadata import PackageNotFoundError, version
+    (importing pandas, scipy and duckdb only to ask would cost most of a small run's start-up).
+    Read once per process (every part and the manifest ask): the code a process runs does
+    not change under it. A copy, so callers may change it."""
+    return dict(_tool_versions())
+
+
+@functools.lru_cache(maxsize=1)
+def _tool_versions() -> dict:
+    from .entry_points import version  # importlib.metadata's answers, without importing it
 
     versions = {"annotator": __version__, "python": platform.python_version()}
     for name in ("numpy", "scipy", "pyarrow", "pandas", "pluggy", "duckdb"):
-        try:
-            versions[name] = version(name)
-        except PackageNotFoundError:  # pragma: no cover - every one is a dependency
-            versions[name] = "not installed"
+        versions[name] = version(name) or "not installed"
     return versions
 
 
@@ -135,6 +140,9 @@ def part_metadata(plan, input_metadata: dict | None = None) -> dict[bytes, bytes
 
 
 def file_sha256(path: Path, bufsize: int = 8 << 20) -> str:
+    """The SHA-256 of a file, by a read of its own: only the Dask engine still needs it, for
+    Parquet and FITS inputs its workers read in parallel byte ranges (the readers otherwise
+    hash while reading, ``annotator.io.hashing``)."""
     h = hashlib.sha256()
     with open(path, "rb") as fh:
         while chunk := fh.read(bufsize):

@@ -6,6 +6,7 @@ import numpy as np
 import pyarrow as pa
 
 from annotator import ColumnSpec, hookimpl
+from annotator.arrow_numpy import from_numpy
 
 from ._redshift import CosmologicalAnnotator, usable_redshift
 
@@ -49,7 +50,9 @@ class Horizons(CosmologicalAnnotator):
     def compute(self, z):
         reachable = self.cosmology.reachable(z)
         return {
-            "reachable": np.ma.MaskedArray(reachable, mask=np.isnan(z)),
+            # an Arrow array, null where z is: a numpy.ma.MaskedArray would import numpy.ma
+            # (~20 ms of every run's start-up)
+            "reachable": from_numpy(reachable, pa.bool_(), mask=np.isnan(z)),
             "horizon_crossing_age_gyr": self.cosmology.horizon_crossing_age_gyr(z),
             "signal_arrival_age_gyr": self.cosmology.signal_arrival_age_gyr(z),
         }

@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from annotator import Annotator, hookimpl
+from annotator.arrow_numpy import null_mask
 
 from ._redshift import REDSHIFT_HINTS
 
@@ -39,7 +40,7 @@ class RedshiftChecks(Annotator):
 
     def annotate(self, batch):
         arr = batch.array("redshift")
-        missing = arr.is_null().to_numpy(zero_copy_only=False)
+        missing = null_mask(arr)
         z = batch.values("redshift")
         batch.flag("redshift_missing", missing)
         batch.flag("redshift_not_finite", ~missing & ~np.isfinite(z))

@@ -151,12 +151,58 @@ PHI_IS_ZERO = -38.5
 TRUNCATION_NEGLIGIBLE_P = 0.05
 
 
-def ndtr(x: np.ndarray) -> np.ndarray:
-    """scipy.special.ndtr, imported on first use (scipy.special costs ~0.2 s to import, which
-    every run would otherwise pay at plugin discovery)."""
-    from scipy.special import ndtr as scipy_ndtr
+_ndtr = None
 
-    return scipy_ndtr(x)
+
+def _scipy_ndtr():
+    """scipy.special.ndtr itself (the same ufunc object), loaded without running
+    ``scipy/special/__init__.py``.
+
+    That ``__init__`` costs about 0.2 s (its array-API layer builds and compiles module
+    clones), most of a small run's start-up, while the ufunc lives in the extension module
+    ``scipy.special._ufuncs``, which loads in about 20 ms. So the package is stood in for by
+    an empty module with its path while ``_ufuncs`` loads, under the import system's lock for
+    ``scipy.special`` (a thread importing scipy.special meanwhile waits, then gets the real
+    package, which reuses the loaded ``_ufuncs``). Any failure falls back to the plain import.
+    """
+    import importlib.util
+    import sys
+    import types
+
+    try:
+        import scipy
+
+        with importlib._bootstrap._ModuleLockManager("scipy.special"):  # type: ignore
+            if "scipy.special" not in sys.modules:
+                spec = importlib.util.find_spec("scipy.special")
+                stand_in = types.ModuleType("scipy.special")
+                stand_in.__path__ = list(spec.submodule_search_locations)
+                stand_in.__spec__ = importlib.util.spec_from_loader("scipy.special", None,
+                                                                    is_package=True)
+                stand_in.__spec__._initializing = True
+                sys.modules["scipy.special"] = stand_in
+                try:
+                    from scipy.special._ufuncs import ndtr as found
+                finally:
+                    if sys.modules.get("scipy.special") is stand_in:
+                        del sys.modules["scipy.special"]
+                    if vars(scipy).get("special") is stand_in:  # getattr would import it
+                        del scipy.special
+                return found
+    except Exception:  # a scipy laid out differently: the ordinary import
+        pass
+    from scipy.special import ndtr as found
+
+    return found
+
+
+def ndtr(x: np.ndarray) -> np.ndarray:
+    """scipy.special.ndtr, loaded on first use (see :func:`_scipy_ndtr`: importing
+    scipy.special would cost every run ~0.2 s)."""
+    global _ndtr
+    if _ndtr is None:
+        _ndtr = _scipy_ndtr()
+    return _ndtr(x)
 
 
 def _phi(a: np.ndarray) -> np.ndarray:

@@ -75,7 +75,7 @@ import pyarrow.parquet as pq
 
 from .. import __version__
 from ..errors import ConfigError, InputError, OutputError, UserError
-from ..io.readers import Chunk, ParquetReader, Source, open_reader
+from ..io.readers import Chunk, ParquetReader, Source, open_reader, source_sha256
 from ..pipeline import Pipeline
 from ..provenance import file_sha256, now_iso, part_metadata
 from .common import (CommitLog, committed_chunks, finish, prepare_output, process_chunk,
@@ -132,7 +132,8 @@ def read_parquet_chunk(source: Source, index: int, chunk_rows: int,
     if not Path(source.path).is_file():
         raise InputError(f"input {source.path}: not visible on host {socket.gethostname()} "
                          f"(the Dask engine needs the inputs on a filesystem every worker sees)")
-    chunks = ParquetReader(source).chunks(chunk_rows, start_chunk=index, target=target)
+    chunks = ParquetReader(source, checksum=False).chunks(chunk_rows, start_chunk=index,
+                                                          target=target)
     try:
         chunk = next(chunks, None)
     finally:
@@ -158,7 +159,7 @@ class FitsChunkTask:
             raise InputError(f"input {self.source.path}: not visible on host "
                              f"{socket.gethostname()} (the Dask engine needs the inputs on a "
                              f"filesystem every worker sees)")
-        chunks = open_reader(self.source, hdu=self.hdu).chunks(
+        chunks = open_reader(self.source, hdu=self.hdu, checksum=False).chunks(
             self.chunk_rows, start_chunk=self.index, target=self.target)
         try:
             chunk = next(chunks, None)
@@ -309,10 +310,14 @@ def _parquet_chunk_count(source: Source, chunk_rows: int) -> int:
     return math.ceil(rows / chunk_rows)
 
 
-def pending_work(plan, done: dict[int, set[int]]
+def pending_work(plan, done: dict[int, set[int]], checksums: dict[str, str] | None = None
                  ) -> Iterator[Chunk | ParquetChunkTask | FitsChunkTask]:
     """Every chunk not yet committed, source by source, in order: descriptors for Parquet
-    and FITS (read on the workers), parsed chunks for CSV (read here)."""
+    and FITS (read on the workers), parsed chunks for CSV (read here).
+
+    :param checksums: filled with the SHA-256 of each CSV source once its last chunk was
+        read here (hashed while it was read, as the local engine does).
+    """
     job = plan.job
     for source in plan.sources:
         skip = done.get(source.index, set())
@@ -335,6 +340,8 @@ def pending_work(plan, done: dict[int, set[int]]
                                    target=plan.catalogue_schema):
             if chunk.index not in skip:
                 yield chunk
+        if checksums is not None:
+            checksums[str(source.path)] = source_sha256(reader)
 
 
 def _work_ids(work: Chunk | ParquetChunkTask | FitsChunkTask) -> tuple[int, int]:
@@ -517,12 +524,16 @@ def run_dask(plan, *, progress=None, resume: bool = False, scheduler: str | None
         commits = CommitLog(log, records, plan.estimated_rows, progress)
         run_id = f"{output_tag(out)}-{uuid.uuid4().hex[:8]}"
         shared = client.scatter(SharedPipeline(run_id, pipeline), broadcast=True, hash=False)
+        # Workers read Parquet and FITS chunks in parallel, each its own byte range, so no one
+        # reads the whole file in order: one task per such file hashes it (a second read).
+        # CSV is read here, in order, and hashed as it is read (``csv_sums``).
         sums = {str(s.path): client.submit(file_sha256, s.path, key=f"annotator-{run_id}-sha256-"
                                            f"{s.index:05d}", pure=False)
-                for s in plan.sources}
+                for s in plan.sources if s.format in WORKER_READ_FORMATS}
+        csv_sums: dict[str, str] = {}
         threads = max(sum(client.nthreads().values()), 1)
         window = TASKS_PER_THREAD * threads
-        work = pending_work(plan, done)
+        work = pending_work(plan, done, csv_sums)
         if any(s.format not in WORKER_READ_FORMATS for s in plan.sources):
             # parse CSV ahead while the driver waits (bounded: the driver's memory)
             work = _prefetch(work, depth=min(window, CSV_PREFETCH_CHUNKS))
@@ -585,7 +596,7 @@ def run_dask(plan, *, progress=None, resume: bool = False, scheduler: str | None
             for future in sums.values():
                 future.cancel()
             raise UserError("run cancelled")
-        checksums = {path: future.result() for path, future in sums.items()}
+        checksums = {path: future.result() for path, future in sums.items()} | csv_sums
         del shared
         return finish(plan, _RecordsInOrder(log), started_at=started_at,
                       elapsed_s=time.perf_counter() - t0, engine="dask", checksums=checksums,

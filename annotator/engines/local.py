@@ -18,9 +18,9 @@ import time
 from concurrent.futures import Future, ThreadPoolExecutor
 from pathlib import Path
 
-from ..io.readers import open_reader
+from ..io.readers import open_reader, source_sha256
 from ..pipeline import Pipeline
-from ..provenance import file_sha256, now_iso, part_metadata
+from ..provenance import now_iso, part_metadata
 from .common import (CommitLog, committed_chunks, finish, prepare_output, sole_writer,
                      write_chunk)
 
@@ -63,8 +63,14 @@ def _prefetch(iterable, depth: int):
         stop.set()
 
 
-def iter_pending_chunks(plan, done: dict[int, set[int]]):
-    """Every chunk not yet committed, source by source, in order."""
+def iter_pending_chunks(plan, done: dict[int, set[int]],
+                        checksums: dict[str, str] | None = None):
+    """Every chunk not yet committed, source by source, in order.
+
+    :param checksums: filled with the SHA-256 of each source (its path as key) once its last
+        chunk was read: the reader hashes the file as it reads it, and reads what it skipped
+        (committed chunks of a resumed run) to hash it in order, so the file is read once.
+    """
     job = plan.job
     for source in plan.sources:
         reader = open_reader(source, **job.reader_options())
@@ -84,6 +90,8 @@ def iter_pending_chunks(plan, done: dict[int, set[int]]):
                     end = min((chunk.index + 1) * job.chunk_rows, rows)
                     chunk.bytes_read = int(source.size_bytes * end / rows)
             yield chunk
+        if checksums is not None:
+            checksums[str(source.path)] = source_sha256(reader)
 
 
 def run_local(plan, *, progress=None, resume: bool = False, cancel=None) -> dict:
@@ -106,11 +114,9 @@ def run_local(plan, *, progress=None, resume: bool = False, cancel=None) -> dict
         commits = CommitLog(log, records, plan.estimated_rows, progress,
                             total_bytes=sum(s.size_bytes for s in plan.sources))
 
-        with ThreadPoolExecutor(max_workers=1, thread_name_prefix="annotator-checksum") \
-                as hasher, \
-                ThreadPoolExecutor(max_workers=WRITERS, thread_name_prefix="annotator-writer") \
+        checksums: dict[str, str] = {}  # filled by the reader thread, source by source
+        with ThreadPoolExecutor(max_workers=WRITERS, thread_name_prefix="annotator-writer") \
                 as writer:
-            sums = {str(s.path): hasher.submit(file_sha256, s.path) for s in plan.sources}
             in_flight: list[tuple[Future, tuple[int, int | None]]] = []
 
             def drain(limit: int) -> None:
@@ -119,7 +125,8 @@ def run_local(plan, *, progress=None, resume: bool = False, cancel=None) -> dict
                     commits.commit(future.result(), position)
 
             try:
-                for chunk in _prefetch(iter_pending_chunks(plan, done), depth=PREFETCH):
+                for chunk in _prefetch(iter_pending_chunks(plan, done, checksums),
+                                       depth=PREFETCH):
                     annotated, counts, flagged = pipeline.annotate(chunk.table)
                     in_flight.append((writer.submit(write_chunk, out, job.compression, metadata,
                                                     chunk, annotated, counts, flagged),
@@ -139,6 +146,5 @@ def run_local(plan, *, progress=None, resume: bool = False, cancel=None) -> dict
                 from ..errors import UserError
 
                 raise UserError("run cancelled")
-            checksums = {k: f.result() for k, f in sums.items()}
         return finish(plan, log, started_at=started_at, elapsed_s=time.perf_counter() - t0,
                       engine="local", checksums=checksums, metadata=metadata)

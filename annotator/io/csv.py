@@ -38,6 +38,7 @@ import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 
 from ..errors import ConfigError, InputError
+from .hashing import HashingFile
 from .missing import DEFAULT_MISSING_TOKENS
 from .readers import Chunk, Source
 
@@ -57,22 +58,25 @@ TYPE_BY_NAME = {
 _INT64_LIMIT = float(2 ** 63)
 
 
-def _open_binary(path: Path):
-    raw = open(path, "rb")
+def _open_binary(path: Path, raw=None):
+    """The file's bytes (decompressed for .gz); ``raw``: the file on disk, already open
+    (a HashingFile, which the decompressor leaves open)."""
+    raw = open(path, "rb") if raw is None else raw
     if path.name.lower().endswith(".gz"):
         return gzip.GzipFile(fileobj=raw, mode="rb")
     return raw
 
 
-def iter_line_blocks(path: Path, block_bytes: int, where: list | None = None
+def iter_line_blocks(path: Path, block_bytes: int, where: list | None = None, raw=None
                      ) -> Iterator[bytearray]:
     """Blocks of whole lines (each ends with a newline, except perhaps the last), read into
     a fresh buffer each (one copy from the file; pyarrow reads the buffer without another).
 
     ``where``: if given, ``where[0]`` is kept at the bytes of the file on disk read so far
     (of the compressed file for .gz), for progress (``Chunk.bytes_read``).
+    ``raw``: see :func:`_open_binary` (the reader's HashingFile, for the checksum).
     """
-    with _open_binary(path) as fh:
+    with _open_binary(path, raw) as fh:
         tail = b""
         while True:
             buf = bytearray(len(tail) + block_bytes)
@@ -294,6 +298,7 @@ class CsvReader:
         self.missing_tokens = list(missing_tokens)
         self.column_types = dict(column_types or {})
         self._delim_b = delimiter.encode()
+        self._hashing: HashingFile | None = None  # set by chunks()
         try:
             first, whole = _first_block(source.path, sample_bytes)
         except (OSError, EOFError, gzip.BadGzipFile) as exc:
@@ -730,11 +735,11 @@ class CsvReader:
             raise InputError(f"input {self.source.path}: cannot convert columns: {exc}") from exc
         return kept, sorted(bad_reason.items())
 
-    def _body_blocks(self, where: list | None = None) -> Iterator[bytearray]:
+    def _body_blocks(self, where: list | None = None, raw=None) -> Iterator[bytearray]:
         """The blocks after the header line (which may lack a newline); the first data line
-        is physical line 2. ``where``: see :func:`iter_line_blocks` (progress)."""
+        is physical line 2. ``where``, ``raw``: see :func:`iter_line_blocks`."""
         first = True
-        for block in iter_line_blocks(self.source.path, self.block_bytes, where):
+        for block in iter_line_blocks(self.source.path, self.block_bytes, where, raw):
             if first:
                 first = False
                 cut = block.find(b"\n")
@@ -742,7 +747,7 @@ class CsvReader:
             if block:
                 yield block
 
-    def _parsed_blocks(self, target: pa.Schema, where: list
+    def _parsed_blocks(self, target: pa.Schema, where: list, raw=None
                        ) -> Iterator[tuple[pa.Table, list[dict], int]]:
         """Each block's (rows, rows set aside, physical lines), in order: the first pass's
         kept rows when they have ``target``'s types, else the text parsed now."""
@@ -759,7 +764,7 @@ class CsvReader:
                     del _PARSED[key]
             return
         line = 2
-        for block in self._body_blocks(where):
+        for block in self._body_blocks(where, raw):
             table, rejected, n_lines = self.parse_block(block, line, target)
             line += n_lines
             yield table, rejected, n_lines
@@ -781,7 +786,10 @@ class CsvReader:
         # ending inside a block gets its share of it (Chunk.bytes_read).
         where, before = [0], 0
         try:
-            for table, rejected, n_lines in self._parsed_blocks(target, where):
+            # the checksum in the same pass (issue 17): blocks parsed now are read through
+            # it; with the first pass's kept rows, sha256() reads the file's bytes at the end
+            self._hashing = HashingFile(self.source.path)
+            for table, rejected, n_lines in self._parsed_blocks(target, where, self._hashing):
                 line += n_lines
                 per_row = (where[0] - before) / max(n_lines, 1)  # progress
                 before = where[0]
@@ -807,6 +815,15 @@ class CsvReader:
             whole = pa.concat_tables(pending) if pending else target.empty_table()
             yield Chunk(self.source, index, whole.combine_chunks(), pending_rejected,
                         bytes_read=self.source.size_bytes)
+
+
+    def sha256(self) -> str:
+        """The SHA-256 of the file as on disk (compressed for .gz), hashed while the chunks
+        read it; a resumed run reads the chunks it skips too (to find their lines), so only
+        what follows the last line read is read here."""
+        if self._hashing is None:  # no chunk was asked for
+            self._hashing = HashingFile(self.source.path)
+        return self._hashing.sha256()
 
 
 def _decode_lenient(raw: bytes, encoding: str) -> str:

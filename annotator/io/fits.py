@@ -50,6 +50,7 @@ import numpy as np
 import pyarrow as pa
 
 from ..errors import ConfigError, InputError
+from .hashing import HashingFile
 
 FITS_SUFFIXES = (".fits", ".fit", ".fts", ".fits.gz", ".fit.gz", ".fz")
 
@@ -267,10 +268,16 @@ def _choose_hdu(path: Path, hdul, hdu) -> int:
 
 
 class FitsReader:
-    """Chunks of one binary-table HDU of a FITS file (see the module docstring)."""
+    """Chunks of one binary-table HDU of a FITS file (see the module docstring).
 
-    def __init__(self, source, *, hdu: int | str | None = None):
+    :param checksum: hash the file (as on disk, compressed for ``.gz``) while the chunks
+        read it (:meth:`sha256`); ``False`` for a reader of one chunk (a Dask worker).
+    """
+
+    def __init__(self, source, *, hdu: int | str | None = None, checksum: bool = True):
         self.source = source
+        self._checksum = checksum
+        self._hashing: HashingFile | None = None
         path = Path(source.path)
         if path.name.lower().endswith(".fz"):
             raise InputError(f"input {path}: tile-compressed FITS (.fz) is not read; "
@@ -330,8 +337,21 @@ class FitsReader:
     def chunk_count(self, chunk_rows: int) -> int:
         return math.ceil(self.num_rows / chunk_rows)
 
+    def sha256(self) -> str:
+        """The SHA-256 of the whole file: the bytes the chunks read were hashed as they were
+        read; the rest (headers of other HDUs, rows a resumed run skipped) is read now."""
+        if not self._checksum:
+            raise ValueError("a reader opened with checksum=False has no checksum")
+        if self._hashing is None:  # no chunk was asked for
+            self._hashing = HashingFile(self.source.path)
+        return self._hashing.sha256()
+
     def _open(self):
-        raw = open(self.source.path, "rb")
+        if self._checksum:
+            self._hashing = raw = HashingFile(self.source.path)
+        else:
+            raw = open(self.source.path, "rb")
+        # the decompressor does not close ``raw``: sha256() reads what it left, then closes
         return gzip.GzipFile(fileobj=raw, mode="rb") if self.gzipped else raw
 
     def read_rows(self, fh, start: int, count: int) -> pa.Table:

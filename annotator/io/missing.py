@@ -19,7 +19,6 @@ import math
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
 
 from ..errors import ConfigError
 
@@ -85,6 +84,8 @@ def check_sentinels(sentinels: dict[str, tuple], schema: pa.Schema, where: str) 
 def apply_sentinels(table: pa.Table, sentinels: dict[str, tuple]
                     ) -> tuple[pa.Table, dict[str, np.ndarray]]:
     """Sentinel values -> null; returns the new table and ``{flag: rows that held one}``."""
+    import pyarrow.compute as pc  # here: importing it costs a run without sentinels ~40 ms
+
     masks: dict[str, np.ndarray] = {}
     if not sentinels or table.num_rows == 0:
         return table, masks

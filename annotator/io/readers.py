@@ -11,6 +11,9 @@ The formats, by file name (:data:`FORMATS`; ``[input].format`` overrides), one m
   physical line number, a reason and the raw text; see that module).
 * FITS binary tables: :mod:`annotator.io.fits` (rows ``[k * n, (k + 1) * n)`` read by byte
   range).
+
+Each reader hashes its file while reading it (``sha256()``, :mod:`annotator.io.hashing`):
+the manifest's checksum costs no second read of the input.
 """
 
 from __future__ import annotations
@@ -96,15 +99,19 @@ def expand_inputs(paths: list[Path], fmt: str = "auto") -> list[Source]:
 
 def open_reader(source: Source, *, delimiter: str = ",", column_types: dict | None = None,
                 encoding: str = "utf-8", missing_tokens=None, numeric=(),
-                hdu: int | str | None = None):
+                hdu: int | str | None = None, checksum: bool = True):
     """The reader for a source's format.
 
     Options a format has no use for are ignored (Parquet and FITS carry their own types and
     nulls). ``hdu`` chooses a FITS file's table (see ``FitsReader``).
     ``numeric`` names the columns the job reads as numbers (see ``CsvReader``).
+    Every reader has ``sha256()``: the SHA-256 of the whole file as on disk, hashed while its
+    chunks read it (``annotator.io.hashing``); ``checksum=False`` (a Dask worker reading one
+    chunk of Parquet or FITS) reads without hashing. CSV is always read from the start, so
+    it always hashes.
     """
     if source.format == "parquet":
-        return ParquetReader(source)  # Parquet carries its own types
+        return ParquetReader(source, checksum=checksum)  # Parquet carries its own types
     if source.format == "csv":
         from .csv import CsvReader
         from .missing import DEFAULT_MISSING_TOKENS
@@ -116,6 +123,15 @@ def open_reader(source: Source, *, delimiter: str = ",", column_types: dict | No
     if source.format == "fits":
         from .fits import FitsReader
 
-        return FitsReader(source, hdu=hdu)
+        return FitsReader(source, hdu=hdu, checksum=checksum)
     raise InputError(f"input {source.path}: unknown format {source.format!r} "
                      f"({', '.join(FORMATS)})")
+
+
+def source_sha256(reader) -> str:
+    """``reader.sha256()``, with a read error as one line naming the file."""
+    try:
+        return reader.sha256()
+    except OSError as exc:
+        raise InputError(f"input {reader.source.path}: cannot read it to the end for its "
+                         f"checksum: {exc.strerror or exc}") from exc

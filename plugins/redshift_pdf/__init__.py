@@ -25,7 +25,6 @@ import math
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
 
 from annotator import Annotator, ColumnSpec, hookimpl
 
@@ -208,6 +207,8 @@ def list_parts(arr, delimiter: str) -> tuple[np.ndarray, np.ndarray, np.ndarray,
 
 
 def _parse_text_lists(arr, delimiter):
+    import pyarrow.compute as pc  # only for text lists (its import costs every run ~40 ms)
+
     parts = pc.split_pattern(pc.utf8_trim_whitespace(arr), delimiter)
     flat = pc.utf8_trim_whitespace(parts.flatten())
     offsets = parts.offsets
