@@ -479,6 +479,7 @@ def shared_grid_quantiles(z: np.ndarray, p: np.ndarray, coarse_cdf: np.ndarray,
     half = 0.5 * h_grid[cell]
     half[:, -1] = 0.0
     upper = np.triu(np.ones((w, w)))
+    # coarse_weights' nodes always leave a full window; other nodes may not
     padded = p if nodes[-2] + block < g else np.pad(p, ((0, 0), (0, block)))
     windows = np.lib.stride_tricks.sliding_window_view(padded, w, axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):

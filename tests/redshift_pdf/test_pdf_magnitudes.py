@@ -13,6 +13,19 @@ from scipy.stats import norm
 
 SAMPLES = Path(__file__).resolve().parents[2] / "sample_catalogues"
 ALPHA = -1.7
+# The demo's K-correction: a template mixture driven by the amber - infrared colour.
+DEMO_MIX_BANDS = {"bands": {
+    "infrared": {"magnitude": "mag_ir", "filter": "filters/infrared.csv"},
+    "amber": {"magnitude": "mag_amber", "filter": "filters/amber.csv",
+              "kcorrection": {"method": "template_mix",
+                              "seds": ["seds/early.csv", "seds/starforming.csv"],
+                              "colour": ["amber", "infrared"], "z_max": 3.5}}}}
+
+
+def _link_samples(tmp_path):
+    """The bundled SEDs and filters, where the job file's relative paths look for them."""
+    for name in ("seds", "filters"):
+        (tmp_path / name).symlink_to(SAMPLES / name)
 
 
 def _k_power_law(z):
@@ -72,17 +85,12 @@ def test_template_mixture_posterior_at_a_point_equals_the_kcorrection_annotator(
     z = np.array([0.3, 0.8, 1.4])
     amber = np.array([21.2, 22.9, 23.8])
     infrared = np.array([20.1, 21.5, 22.0])
-    kc = {"method": "template_mix", "seds": ["seds/early.csv", "seds/starforming.csv"],
-          "colour": ["amber", "infrared"], "z_max": 3.5}
-    bands = {"bands": {
-        "infrared": {"magnitude": "mag_ir", "filter": "filters/infrared.csv"},
-        "amber": {"magnitude": "mag_amber", "filter": "filters/amber.csv", "kcorrection": kc}}}
+    bands = DEMO_MIX_BANDS
     draws = [[zi] * 5 for zi in z]
     draws[2] = [1.4, 1.4, 3.6, 1.4, 1.4]  # one draw beyond z_max = 3.5
     table = pa.table({"z": z, "mag_amber": amber, "mag_ir": infrared,
                       "s": list_column(draws, pa.float64())})
-    for name in ("seds", "filters"):
-        (tmp_path / name).symlink_to(SAMPLES / name)
+    _link_samples(tmp_path)
     out, flags, _ = annotate(tmp_path, table, {"kind": "samples", "column": "s"}, bands)
     direct = col(out, "absolute_magnitude_amber_mag")
     finite = np.isfinite(direct)  # the mixture refuses colours outside its range (row 0 may)
@@ -106,14 +114,9 @@ def test_magnitude_posterior_takes_the_galactic_extinction_of_the_kcorrection_ru
     amber = np.array([21.2, 22.9, 23.8, 23.0])
     infrared = np.array([20.1, 21.5, 22.0, 21.6])
     ebv = pa.array([0.02, 0.15, 0.4, None], pa.float64())
-    kc = {"method": "template_mix", "seds": ["seds/early.csv", "seds/starforming.csv"],
-          "colour": ["amber", "infrared"], "z_max": 3.5}
-    bands = {"bands": {
-        "infrared": {"magnitude": "mag_ir", "filter": "filters/infrared.csv"},
-        "amber": {"magnitude": "mag_amber", "filter": "filters/amber.csv", "kcorrection": kc}}}
+    bands = DEMO_MIX_BANDS
     draws = [[zi] * 5 for zi in z]
-    for name in ("seds", "filters"):
-        (tmp_path / name).symlink_to(SAMPLES / name)
+    _link_samples(tmp_path)
     table = pa.table({"z": z, "mag_amber": amber, "mag_ir": infrared, "ebv": ebv,
                       "s": list_column(draws, pa.float64())})
     out, _, _ = annotate(tmp_path, table, {"kind": "samples", "column": "s"}, bands)
