@@ -1,14 +1,21 @@
-"""SQL functions of the recorded cosmology: vectorised Arrow UDFs against the alternatives.
+"""SQL functions of the recorded cosmology: native (DuckDB's own arithmetic) against Python UDFs.
 
 Builds (once, cached in benchmarks/_data) an annotated output of ``--rows`` rows with the real
 pipeline, then times, in the same run and on the same files:
 
 * ``sum(comoving_distance_mpc)``      the annotated column read directly (the floor);
-* ``sum(comoving_distance_mpc(z))``   the Arrow UDF (one numpy call per DuckDB vector);
+* the Python (Arrow) UDF on one DuckDB thread (the previous code) and on all of them (the
+  code before that);
+* every SQL function of the cosmology in its native form (``annotator/sql/native.py``:
+  piecewise polynomials in a DuckDB macro, on all threads), the inverses over the column they
+  invert, and a COPY of a native result to Parquet;
 * ``sum(dc_row_at_a_time(z))``        the same engine called row by row from a plain Python
   UDF (the competing approach), on a slice of ``--row-udf-rows`` rows;
-* the engine alone on an in-memory numpy array (the ceiling for the UDF);
-* a few more functions (reachable, an inverse) and a COPY of a UDF result to Parquet.
+* the engine alone on an in-memory numpy array.
+
+It prints the time to fit the native forms, their agreement with the stored column, and a
+NATIVE line: comoving_distance_mpc's rate against the one-thread Python UDF and the slowest
+native function against the 20 M rows/s target.
 
 Run: ``.venv/bin/python benchmarks/bench_sql.py --rows 10000000`` (default 1,000,000).
 """
@@ -80,29 +87,44 @@ def main(argv=None) -> int:
             def q(sql):
                 return lambda: s.relation(sql).fetchall()[0][0]
 
+            python_dc = s.functions["comoving_distance_mpc"][0].python_name
             cases = [
                 ("column read directly: sum(comoving_distance_mpc)",
                  q("SELECT sum(comoving_distance_mpc) FROM catalogue"), n),
-                ("Arrow UDF: sum(comoving_distance_mpc(z))",
-                 q("SELECT sum(comoving_distance_mpc(z)) FROM catalogue"), n),
-                ("Arrow UDF: count(*) WHERE reachable(z)",
-                 q("SELECT count(*) FROM catalogue WHERE reachable(z)"), n),
-                ("Arrow UDF: sum(redshift_at_comoving_distance(comoving_distance_mpc))",
-                 q("SELECT sum(redshift_at_comoving_distance(comoving_distance_mpc)) "
-                   "FROM catalogue"), n),
-                ("Arrow UDF + COPY to Parquet: objid, luminosity_distance_mpc(z)",
-                 lambda: s.copy_to("SELECT objid, luminosity_distance_mpc(z) AS dl FROM "
-                                   "catalogue", "parquet", overwrite=True), n),
+                ("Python UDF on one thread (previous code): sum(comoving_distance_mpc(z))",
+                 q(f"SELECT sum({python_dc}(z)) FROM catalogue"), n),
             ]
-            # the previous code: the same Arrow UDF called from all of DuckDB's threads
-            # (queries now run on a one-thread instance when they call a Python function)
+            # the code before that: the same Python UDF called from all of DuckDB's threads
             from annotator.sql.session import arrow_udf
 
             fn_dc = s.functions["comoving_distance_mpc"][0]
             s.con.create_function("dc_on_all_threads", arrow_udf(fn_dc), ["DOUBLE"], "DOUBLE",
                                   type="arrow", null_handling="special", side_effects=False)
-            cases.insert(2, ("Arrow UDF on all DuckDB threads (previous code)",
-                             q("SELECT sum(dc_on_all_threads(z)) FROM catalogue"), n))
+            cases.append(("Python UDF on all DuckDB threads (the code before)",
+                          q("SELECT sum(dc_on_all_threads(z)) FROM catalogue"), n))
+            # every function of the cosmology, native (DuckDB evaluates it on all threads);
+            # the inverses take the column they invert
+            argument = {"redshift_at_comoving_distance": "comoving_distance_mpc",
+                        "redshift_at_lookback_time": "lookback_time_gyr",
+                        "redshift_at_age": "age_at_emission_gyr"}
+            t_fit = time.perf_counter()
+            for name in sorted(s.functions):
+                s.relation(f"SELECT {name}(0.5)").fetchall()  # fitted when first used
+            fit_s = time.perf_counter() - t_fit
+            for name in sorted(s.functions):
+                fn = s.functions[name][0]
+                arg = argument.get(name, "z")
+                agg = "count_if" if fn.return_type.upper() == "BOOLEAN" else "sum"
+                cases.append((f"native: {agg}({name}({arg}))",
+                              q(f"SELECT {agg}({name}({arg})) FROM catalogue"), n))
+            cases.append(("native + COPY to Parquet: objid, luminosity_distance_mpc(z)",
+                          lambda: s.copy_to("SELECT objid, luminosity_distance_mpc(z) AS dl "
+                                            "FROM catalogue", "parquet", overwrite=True), n))
+            (stored, natively, python), = s.relation(
+                f"SELECT sum(comoving_distance_mpc), sum(comoving_distance_mpc(z)), "
+                f"sum({python_dc}(z)) FROM catalogue").fetchall()
+            agreement = (abs(natively / stored - 1), abs(python / stored - 1))
+            segments = {k: (f.fitted_segments, len(f.segments)) for k, f in s.fitted.items()}
             for label, fn, rows in cases:
                 secs, value = best_of(args.repeats, fn)
                 results.append({"case": label, "rows": rows, "seconds": secs,
@@ -122,7 +144,7 @@ def main(argv=None) -> int:
                             "value": value})
             secs_udf_same, value_udf_same = best_of(args.repeats, q(
                 f"SELECT sum(comoving_distance_mpc(z)) FROM (SELECT z FROM catalogue LIMIT {m})"))
-            results.append({"case": f"Arrow UDF on the same {m:,} rows", "rows": m,
+            results.append({"case": f"native on the same {m:,} rows", "rows": m,
                             "seconds": secs_udf_same, "rows_per_second": m / secs_udf_same,
                             "value": value_udf_same})
 
@@ -142,8 +164,21 @@ def main(argv=None) -> int:
     print(f"{args.rows:,}-row annotated output, cosmology {cosmo.name}; best of "
           f"{args.repeats}; {os.cpu_count()} cores, load average {load}")
     for r in results:
-        print(f"  {r['case']:<72} {r['rows']:>11,} rows {r['seconds']:>8.3f} s "
+        print(f"  {r['case']:<78} {r['rows']:>11,} rows {r['seconds']:>8.3f} s "
               f"{r['rows_per_second'] / 1e6:>9.2f} M rows/s")
+    native = [r for r in results if r["case"].startswith("native: ")]
+    slowest = min(native, key=lambda r: r["rows_per_second"])
+    one_thread = next(r for r in results if r["case"].startswith("Python UDF on one thread"))
+    dc = next(r for r in native if "comoving_distance_mpc(z)" in r["case"])
+    print(f"fitting the native forms of all {len(segments)} fitted functions: {fit_s:.3f} s "
+          f"(once per session, each when a statement first uses it); segments fitted/all: "
+          + ", ".join(f"{k} {a}/{b}" for k, (a, b) in sorted(segments.items())))
+    print(f"sum of comoving_distance_mpc(z) against the stored column: native "
+          f"{agreement[0]:.1e}, Python {agreement[1]:.1e} (relative)")
+    print(f"NATIVE: comoving_distance_mpc(z) {dc['rows_per_second'] / 1e6:.1f} M rows/s, "
+          f"{dc['rows_per_second'] / one_thread['rows_per_second']:.2f}x the Python UDF on one "
+          f"thread; slowest native function {slowest['case'][8:]} "
+          f"{slowest['rows_per_second'] / 1e6:.1f} M rows/s (target >= 20 M rows/s)")
     return 0
 
 

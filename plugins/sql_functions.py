@@ -4,6 +4,14 @@ Every function is named after the output column it mirrors and takes a redshift 
 take a distance or a time), so ``SELECT comoving_distance_mpc(z)`` on an old output evaluates
 with the cosmology recorded in that output's manifest. Results follow the annotators' rules:
 NULL for a NULL, NaN, infinite or negative redshift.
+
+Each function is also evaluated by DuckDB itself, on all its threads (``SqlApproximation``:
+piecewise polynomials fitted to the engine when a query session opens and checked against it
+to ``RTOL`` at every check point; the engine answers outside ``Z_NATIVE`` and wherever a
+segment would not pass). The form fitted takes out what a polynomial cannot follow: the zero
+at z = 0 of a distance, time or velocity (``power``), the decades an age or H(z) spans
+(``log``), the logarithm of the distance modulus (``outer``). ``reachable`` is exact SQL: a
+comparison with the event-horizon redshift.
 """
 
 from __future__ import annotations
@@ -13,7 +21,35 @@ import re
 import numpy as np
 
 from annotator import hookimpl
-from annotator.sql import Selection, SelectionParameter, SqlFunction, quote_identifier
+from annotator.sql import (Selection, SelectionParameter, SqlApproximation, SqlFunction,
+                           quote_identifier)
+
+Z_NATIVE = 30.0  # redshifts up to this are evaluated natively (the engine answers above)
+Z_INVERSE_LOW = 1e-3  # redshift_at_age: natively for z in [Z_INVERSE_LOW, Z_NATIVE]
+RTOL = 1e-9  # tolerance of the native forms against the engine (the engine: 1e-10 of quadrature)
+MU_ATOL = 1e-9  # mag: the distance modulus' tolerance (absolute: it crosses zero near 10 pc)
+_MU_OUTER = ("(5 * log10({}) + 25)", lambda g: 5.0 * np.log10(g) + 25.0,
+             lambda mu: 10.0 ** ((mu - 25.0) / 5.0))
+# how each forward function is fitted (see the module text)
+_FORMS = {
+    "comoving_distance_mpc": {"power": 1},
+    "transverse_comoving_distance_mpc": {"power": 1},
+    "angular_diameter_distance_mpc": {"power": 1},
+    "luminosity_distance_mpc": {"power": 1},
+    "distance_modulus_mag": {"power": 1, "outer": _MU_OUTER, "rtol": 0.0, "atol": MU_ATOL},
+    "lookback_time_gyr": {"power": 1},
+    "age_at_emission_gyr": {"log": True},
+    "comoving_volume_mpc3": {"power": 3},
+    "differential_comoving_volume_mpc3_sr": {"power": 2},
+    "hubble_parameter_km_s_mpc": {"log": True},
+    "recession_velocity_now_c": {"power": 1},
+    "recession_velocity_at_emission_c": {"power": 1},
+    # the crossing age diverges like -ln z at z = 0: fitted from Z_CROSSING_LOW, on geometric
+    # segments; the arrival age diverges at the event horizon and is NaN beyond it
+    "horizon_crossing_age_gyr": {"log": True, "null_where_nan": True},
+    "signal_arrival_age_gyr": {"log": True, "null_where_nan": True},
+}
+Z_CROSSING_LOW = 1e-3
 
 ABSOLUTE_MAGNITUDE = re.compile(r"^absolute_magnitude_([a-z0-9_]+)_mag$")
 K_SHELL_OBJECTS = 101  # objects nearest z_max (either side) whose median K stands for K(z_max)
@@ -82,19 +118,57 @@ _INVERSE = (
 )
 
 
+def _forward(name: str) -> SqlApproximation:
+    form = {"rtol": RTOL, "geometric_from": 1.0, **_FORMS[name]}
+    if name == "horizon_crossing_age_gyr":
+        return SqlApproximation((Z_CROSSING_LOW, Z_NATIVE), **(form | {
+            "geometric_from": Z_CROSSING_LOW}))
+    return SqlApproximation((0.0, Z_NATIVE), **form)
+
+
+def _inverse(cosmology, name: str) -> SqlApproximation | None:
+    """The argument range of each inverse over Z_NATIVE (redshift_at_age stops short of today,
+    where its redshift falls to zero and a relative tolerance cannot be held)."""
+    with np.errstate(all="ignore"):
+        if name == "redshift_at_comoving_distance":
+            lo, hi = 0.0, float(cosmology.comoving_distance_mpc(Z_NATIVE))
+            power = 1
+        elif name == "redshift_at_lookback_time":
+            lo, hi = 0.0, float(cosmology.lookback_time_gyr(Z_NATIVE))
+            power = 1
+        else:
+            lo = float(cosmology.age_at_emission_gyr(Z_NATIVE))
+            hi = float(cosmology.age_at_emission_gyr(Z_INVERSE_LOW))
+            power = 0
+    if not (np.isfinite(lo) and np.isfinite(hi) and hi > lo):
+        return None
+    return SqlApproximation((lo, hi), power=power, rtol=RTOL)
+
+
+def _reachable_sql(cosmology) -> str:
+    """``reachable`` in SQL: z >= 0 and below the event-horizon redshift (NULL for a NULL,
+    NaN, infinite or negative z, as the Python form; NaN compares above every number in
+    DuckDB)."""
+    zeh = cosmology.derived().get("event_horizon_redshift")
+    inside = "TRUE" if zeh is None or not np.isfinite(zeh) else f"z < {float(zeh):.17e}"
+    return f"CASE WHEN z >= 0 AND z < 'inf'::DOUBLE THEN {inside} END"
+
+
 @hookimpl
 def register_sql_functions(cosmology) -> list[SqlFunction]:
     functions = [
-        SqlFunction(name, _OfRedshift(cosmology, name), (("z", "DOUBLE"),), "DOUBLE", unit, desc)
+        SqlFunction(name, _OfRedshift(cosmology, name), (("z", "DOUBLE"),), "DOUBLE", unit, desc,
+                    approximation=_forward(name))
         for name, unit, desc in _FORWARD
     ]
     functions.append(SqlFunction(
         "reachable", _OfRedshift(cosmology, "reachable", boolean=True), (("z", "DOUBLE"),),
         "BOOLEAN", None,
         "True if a source seen at z lies inside our event horizon today (a signal sent now "
-        "reaches it)."))
+        "reaches it).", native_sql=_reachable_sql(cosmology)))
     functions += [
-        SqlFunction(name, _Inverse(cosmology, name), ((arg, "DOUBLE"),), "DOUBLE", None, desc)
+        SqlFunction(name, _Inverse(cosmology, name), ((arg, "DOUBLE"),), "DOUBLE", None, desc,
+                    approximation=_inverse(cosmology, name))
         for name, arg, desc in _INVERSE
     ]
     return functions

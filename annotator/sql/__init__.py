@@ -20,8 +20,10 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 
 from ..errors import ConfigError, UserError
+from .native import SqlApproximation
 
-__all__ = ["SqlFunction", "Selection", "SelectionParameter", "QueryError", "quote_identifier"]
+__all__ = ["SqlFunction", "SqlApproximation", "Selection", "SelectionParameter", "QueryError",
+           "quote_identifier"]
 
 _SQL_NAME = re.compile(r"^[a-z_][a-z0-9_]*$")
 _PLACEHOLDER = re.compile(r"\$\{([a-z_][a-z0-9_]*)\}")
@@ -49,6 +51,14 @@ class SqlFunction:
         argument is NaN).
     :param unit: VOUnit of the result, or ``None``.
     :param description: one sentence for ``annotator query --list-functions``.
+    :param approximation: how DuckDB may evaluate a one-argument DOUBLE function natively on
+        all its threads (:class:`~annotator.sql.native.SqlApproximation`: piecewise
+        polynomials fitted to ``function`` and checked against it when a session opens;
+        ``function`` itself answers wherever they are not within tolerance).
+    :param native_sql: the function's exact SQL expression over its parameter names, for a
+        function SQL can state in closed form (e.g. a comparison with a constant); DuckDB then
+        evaluates it natively. ``function`` still defines the result: a test should hold the
+        two equal.
     """
 
     name: str
@@ -57,6 +67,8 @@ class SqlFunction:
     return_type: str = "DOUBLE"
     unit: str | None = None
     description: str = ""
+    approximation: SqlApproximation | None = None
+    native_sql: str | None = None
 
     def __post_init__(self) -> None:
         if not _SQL_NAME.match(self.name):
@@ -69,6 +81,24 @@ class SqlFunction:
         if self.return_type.upper() not in ("DOUBLE", "BOOLEAN"):
             raise ValueError(f"SQL function {self.name}: return type {self.return_type!r} is not "
                              f"DOUBLE or BOOLEAN")
+        if self.approximation is not None and self.native_sql is not None:
+            raise ValueError(f"SQL function {self.name}: give approximation or native_sql, "
+                             f"not both")
+        if self.approximation is not None and (len(self.parameters) != 1
+                                               or self.return_type.upper() != "DOUBLE"):
+            raise ValueError(f"SQL function {self.name}: an approximation needs one DOUBLE "
+                             f"parameter and a DOUBLE result")
+
+    @property
+    def native(self) -> bool:
+        """True when DuckDB evaluates it itself (an approximation or native SQL)."""
+        return self.approximation is not None or self.native_sql is not None
+
+    @property
+    def python_name(self) -> str:
+        """The SQL name of the Python function itself: ``name`` unless the function is native,
+        then a hidden name the native form falls back on."""
+        return f"_python_{self.name}" if self.native else self.name
 
     @property
     def signature(self) -> str:

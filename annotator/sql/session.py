@@ -29,7 +29,7 @@ import numpy as np
 import pyarrow as pa
 
 from ..errors import ConfigError, OutputError, PluginError
-from . import QueryError, Selection, SqlFunction, quote_identifier
+from . import QueryError, Selection, SqlFunction, native, quote_identifier
 from .metadata import COLUMN_FIELDS, REJECTED_COLUMNS, OutputFolder
 
 RESERVED_SCHEMAS = {"main", "temp", "system", "memory", "information_schema", "pg_catalog"}
@@ -376,6 +376,9 @@ class QuerySession:
         self._folders = folders
         self._selection_text: str | None = None
         self._serial = None
+        self._native_bodies: dict[str, str] = {}
+        self._made: dict[int, set[str]] = {}  # native macros created, per connection
+        self.fitted: dict[str, native.Fitted] = {}  # the approximations fitted, by name
         self.con = duckdb.connect(":memory:")
         try:
             self._build(self.con)
@@ -390,28 +393,57 @@ class QuerySession:
         A statement that calls one of the Python SQL functions (directly, or through the
         ``selection`` view) runs on a second, identical instance limited to one thread: DuckDB
         would call the function from every thread, and the interpreter lock makes those calls
-        take turns at a high cost (measured by benchmarks/bench_sql.py: 36 M rows/s with one
-        thread against 11-14 M with two). Every other statement keeps all threads.
+        take turns at a high cost (benchmarks/bench_sql.py measures both). Native functions
+        (``SqlFunction.native``: macros DuckDB evaluates itself, see :mod:`.native`) keep all
+        threads: they call their Python function only for the few rows outside their
+        fitted segments. Every other statement keeps all threads too.
         """
         functions, tables = functions_and_tables(text)
-        python = set(self.functions)
-        calls = bool(functions & python)
-        if not calls and SELECTION_VIEW in tables and self._selection_text is not None:
-            calls = bool(functions_and_tables(self._selection_text)[0] & python)
-        if not calls:
+        named = self._native_named(text)
+        if SELECTION_VIEW in tables and self._selection_text is not None:
+            functions = functions | functions_and_tables(self._selection_text)[0]
+        python = {fn.python_name for fn, _ in self.functions.values()}
+        if not functions & python:
+            self._ensure_native(self.con, named)
             return self.con
         if self._serial is None:
             serial = duckdb.connect(":memory:", config={"threads": 1})
             try:
                 self._build(serial)
                 if self._selection_text is not None:
+                    self._ensure_native(serial, self._native_named(self._selection_text))
                     serial.execute(f"CREATE OR REPLACE VIEW {SELECTION_VIEW} AS\n"
                                    f"{self._selection_text}\n")
             except BaseException:
                 serial.close()
                 raise
             self._serial = serial
+        self._ensure_native(self._serial, named)
         return self._serial
+
+    def _native_named(self, text: str) -> set[str]:
+        """The native functions whose name ``text`` calls (a textual superset of the syntax
+        tree's, which EXPLAIN and DESCRIBE statements do not give)."""
+        return {name for name, (fn, _) in self.functions.items()
+                if fn.native and re.search(rf"\b{name}\s*\(", text, re.IGNORECASE)}
+
+    def _ensure_native(self, con, names: set[str]) -> None:
+        """Create the macros of the native functions among ``names`` on ``con`` (each fitted
+        once per session, when a statement first uses it: opening a session fits nothing)."""
+        made = self._made.setdefault(id(con), set())
+        for name in sorted(names - made):
+            entry = self.functions.get(name)
+            if entry is None or not entry[0].native:
+                continue
+            fn, plugin = entry
+            args = ", ".join(quote_identifier(a) for a, _ in fn.parameters)
+            try:
+                con.execute(f"CREATE MACRO {quote_identifier(fn.name)}({args}) AS "
+                            f"({self._native_body(fn, plugin)})")
+            except duckdb.Error as exc:
+                raise PluginError(f"plugin {plugin!r}: SQL function {fn.name!r} cannot be "
+                                  f"installed: {query_error(exc, 'DuckDB')}") from exc
+            made.add(name)
 
     def _build(self, con) -> None:
         folders = self._folders
@@ -424,9 +456,9 @@ class QuerySession:
             self._views(con, name, out)
         for fn, plugin in self.functions.values():
             try:
-                con.create_function(fn.name, arrow_udf(fn), [t for _, t in fn.parameters],
-                                    fn.return_type, type="arrow", null_handling="special",
-                                    side_effects=False)
+                con.create_function(fn.python_name, arrow_udf(fn),
+                                    [t for _, t in fn.parameters], fn.return_type, type="arrow",
+                                    null_handling="special", side_effects=False)
             except duckdb.Error as exc:
                 raise PluginError(f"plugin {plugin!r}: SQL function {fn.name!r} cannot be "
                                   f"installed: {query_error(exc, 'DuckDB')}") from exc
@@ -441,6 +473,26 @@ class QuerySession:
             con.execute(f"SET allowed_paths = {_path_list(files)}")
         con.execute("SET enable_external_access = false")
         con.execute("SET lock_configuration = true")
+
+    def _native_body(self, fn: SqlFunction, plugin: str) -> str:
+        """The macro text of a native function (fitted once per session, see ``native``)."""
+        body = self._native_bodies.get(fn.name)
+        if body is not None:
+            return body
+        # a cast, so a wrong argument is refused naming its value (as a typed function is)
+        arg = f"CAST({quote_identifier(fn.parameters[0][0])} AS DOUBLE)"
+        if fn.native_sql is not None:
+            body = fn.native_sql
+        else:
+            try:
+                fitted = native.fit(fn.function, fn.approximation)
+            except Exception as exc:
+                raise PluginError(f"plugin {plugin!r}: SQL function {fn.name!r}: its "
+                                  f"approximation could not be fitted: {exc}") from exc
+            self.fitted[fn.name] = fitted
+            body = native.macro_body(fitted, arg, quote_identifier(fn.python_name))
+        self._native_bodies[fn.name] = body
+        return body
 
     def _views(self, con, schema: str, out: OutputFolder) -> None:
         q = quote_identifier(schema)
@@ -467,9 +519,11 @@ class QuerySession:
         text, kind = read_only_statement(sql)
         if kind != "SELECT":
             raise PluginError(f"selection {name!r} is not a SELECT")
+        used = self._native_named(text)
         try:
             for con in (self.con, self._serial):
                 if con is not None:
+                    self._ensure_native(con, used)
                     con.execute(f"CREATE OR REPLACE VIEW {SELECTION_VIEW} AS\n{text}\n")
         except duckdb.Error as exc:
             raise query_error(exc, f"selection {name!r}") from None
