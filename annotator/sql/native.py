@@ -277,13 +277,23 @@ def _segment_sql(a: SqlApproximation, s: Segment, arg: str, fallback: str) -> st
 FLAT_SEGMENTS = 4  # up to this many segments in one CASE (in order); more as a binary tree
 
 
+def _weight(a: SqlApproximation, s: Segment) -> float:
+    """A segment's share of a catalogue's rows, as the fit measures the domain: its width, or
+    its width in ln x above ``geometric_from`` (common practice: redshifts spread over decades)."""
+    if s.lo >= a.geometric_from and s.lo > 0:
+        return math.log(s.hi / s.lo) * a.geometric_from
+    return s.hi - s.lo
+
+
 def _tree(a: SqlApproximation, segs: tuple[Segment, ...], arg: str, fallback: str) -> str:
     if len(segs) <= FLAT_SEGMENTS:
         whens = [f"WHEN {arg} < {_num(s.hi)} THEN {_segment_sql(a, s, arg, fallback)}"
                  for s in segs[:-1]]
         last = _segment_sql(a, segs[-1], arg, fallback)
         return f"CASE {' '.join(whens)} ELSE {last} END" if whens else last
-    half = len(segs) // 2
+    # split where the weights balance, so the wide segments (most rows) sit near the root
+    cum = np.cumsum([_weight(a, s) for s in segs])
+    half = int(np.clip(np.searchsorted(cum, 0.5 * cum[-1]) + 1, 1, len(segs) - 1))
     return (f"CASE WHEN {arg} < {_num(segs[half].lo)} THEN {_tree(a, segs[:half], arg, fallback)}"
             f" ELSE {_tree(a, segs[half:], arg, fallback)} END")
 
@@ -292,8 +302,9 @@ def macro_body(fitted: Fitted, arg: str, fallback: str) -> str:
     """The SQL expression of the macro: ``arg`` is its parameter, ``fallback`` the name of the
     Python function (called for arguments outside the fitted segments, NULL and NaN).
 
-    Up to ``FLAT_SEGMENTS`` segments are one ``CASE`` in order of the argument (the first
-    segments, where most rows of a catalogue lie, are tested first); more are split in halves.
+    Up to ``FLAT_SEGMENTS`` segments are one ``CASE`` in order of the argument; more are a
+    binary tree of ``CASE``, split where the segments' widths balance (:func:`_weight`), so
+    the wide segments, where most rows lie, are reached in few comparisons.
     A DuckDB ``CASE`` evaluates each branch only for its rows, so the Python function is called
     only for the rows it is left.
     """
