@@ -94,7 +94,16 @@ def _list_functions(session, out) -> None:
               f"{cosmo.to_dict()}\n")
     for name, (fn, plugin) in sorted(session.functions.items()):
         unit = f" [{fn.unit}]" if fn.unit else ""
-        out.write(f"{fn.signature}{unit}  ({plugin})\n    {fn.description}\n")
+        how = ""
+        if fn.approximation is not None:
+            lo, hi = fn.approximation.domain
+            how = (f"    native: DuckDB evaluates it on all threads for {lo:g} <= "
+                   f"{fn.parameters[0][0]} < {hi:g} (fitted to the function, checked within "
+                   f"rtol {fn.approximation.rtol:g}, atol {fn.approximation.atol:g}); "
+                   f"{fn.python_name}() is the function itself\n")
+        elif fn.native_sql is not None:
+            how = f"    native: exact SQL, {fn.native_sql}\n"
+        out.write(f"{fn.signature}{unit}  ({plugin})\n    {fn.description}\n{how}")
 
 
 def main(args) -> int:
