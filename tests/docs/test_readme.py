@@ -188,6 +188,20 @@ def test_performance_figures_name_their_benchmark():
                 f"{script} is not run by make bench"
 
 
+def test_performance_figures_come_from_the_one_make_bench_log():
+    """Every bold figure of docs/performance.md's table is printed, as written, in the one
+    `make bench` log the page names (so the page cannot drift from a measurement)."""
+    page = (ROOT / "docs" / "performance.md").read_text()
+    (log_name,) = set(re.findall(r"\(bench/(make-bench-[\d-]+\.log)\)", page))
+    log = (ROOT / "docs" / "bench" / log_name).read_text()
+    rows = [line for line in page.split("\n") if line.startswith("| ") and "---" not in line]
+    figures = [n for row in rows for bold in re.findall(r"\*\*(.+?)\*\*", row)
+               for n in re.findall(r"\d[\d,]*(?:\.\d+)?(?:e-?\d+)?", bold)]
+    assert len(figures) > 30
+    missing = [n for n in figures if n not in log]
+    assert not missing, f"bold figures of docs/performance.md not in {log_name}: {missing}"
+
+
 def test_report_sections_listed_as_the_page_shows_them(tmp_path, demo_output):
     """docs/report.md lists the report's sections (its bold bullets) as the page titles them."""
     text = (ROOT / "docs" / "report.md").read_text()
