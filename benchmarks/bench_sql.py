@@ -116,10 +116,7 @@ def main(argv=None) -> int:
                     fit_s[name] = best_of(args.repeats,
                                           lambda fn=fn: native.fit(fn.function,
                                                                    fn.approximation))[0]
-            for name in sorted(s.functions):
                 s.relation(f"SELECT {name}(0.5)").fetchall()  # the session fits on first use
-            for name in sorted(s.functions):
-                fn = s.functions[name][0]
                 arg = argument.get(name, "z")
                 agg = "count_if" if fn.return_type.upper() == "BOOLEAN" else "sum"
                 cases.append((f"native: {agg}({name}({arg}))",
@@ -173,10 +170,10 @@ def main(argv=None) -> int:
     for r in results:
         print(f"  {r['case']:<78} {r['rows']:>11,} rows {r['seconds']:>8.3f} s "
               f"{r['rows_per_second'] / 1e6:>9.2f} M rows/s")
-    native = [r for r in results if r["case"].startswith("native: ")]
-    slowest = min(native, key=lambda r: r["rows_per_second"])
+    natives = [r for r in results if r["case"].startswith("native: ")]
+    slowest = min(natives, key=lambda r: r["rows_per_second"])
     one_thread = next(r for r in results if r["case"].startswith("Python UDF on one thread"))
-    dc = next(r for r in native if "comoving_distance_mpc(z)" in r["case"])
+    dc = next(r for r in natives if "comoving_distance_mpc(z)" in r["case"])
     print(f"fitting and checking the native form (once per session, when a statement first "
           f"uses the function): median {1e3 * float(np.median(list(fit_s.values()))):.1f} ms, "
           f"max {1e3 * max(fit_s.values()):.1f} ms ({max(fit_s, key=fit_s.get)}), "

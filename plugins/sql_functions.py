@@ -6,11 +6,11 @@ with the cosmology recorded in that output's manifest. Results follow the annota
 NULL for a NULL, NaN, infinite or negative redshift.
 
 Each function is also evaluated by DuckDB itself, on all its threads (``SqlApproximation``:
-piecewise polynomials fitted to the engine when a query session opens and checked against it
-to ``RTOL`` at every check point; the engine answers outside ``Z_NATIVE`` and wherever a
-segment would not pass). The form fitted takes out what a polynomial cannot follow: the zero
-at z = 0 of a distance, time or velocity (``power``), the decades an age or H(z) spans
-(``log``), the logarithm of the distance modulus (``outer``). ``reachable`` is exact SQL: a
+piecewise polynomials fitted to the engine when a query first uses the function, checked
+against it to ``RTOL`` at every check point; the engine answers outside ``Z_NATIVE`` and
+wherever a segment would not pass). The form fitted takes out what a polynomial cannot
+follow: the zero at z = 0 of a distance, time or velocity (``power``), the decades an age or
+H(z) spans (``log``), the logarithm of the distance modulus (``outer``). ``reachable`` is exact SQL: a
 comparison with the event-horizon redshift.
 """
 

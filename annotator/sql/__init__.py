@@ -53,8 +53,8 @@ class SqlFunction:
     :param description: one sentence for ``annotator query --list-functions``.
     :param approximation: how DuckDB may evaluate a one-argument DOUBLE function natively on
         all its threads (:class:`~annotator.sql.native.SqlApproximation`: piecewise
-        polynomials fitted to ``function`` and checked against it when a session opens;
-        ``function`` itself answers wherever they are not within tolerance).
+        polynomials fitted to ``function`` and checked against it when a statement first
+        uses it; ``function`` itself answers wherever they are not within tolerance).
     :param native_sql: the function's exact SQL expression over its parameter names, for a
         function SQL can state in closed form (e.g. a comparison with a constant); DuckDB then
         evaluates it natively. ``function`` still defines the result: a test should hold the

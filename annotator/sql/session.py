@@ -260,6 +260,17 @@ def arrow_udf(fn: SqlFunction):
     return udf
 
 
+def native_body(fn: SqlFunction) -> tuple[str, native.Fitted | None]:
+    """The body of the macro ``fn.name(<its parameter>)`` of a native function, and the fit
+    behind it (None for ``native_sql``). Its Python fallback is ``fn.python_name``."""
+    if fn.native_sql is not None:
+        return fn.native_sql, None
+    # a cast, so a wrong argument is refused naming its value (as a typed function is)
+    arg = f"CAST({quote_identifier(fn.parameters[0][0])} AS DOUBLE)"
+    fitted = native.fit(fn.function, fn.approximation)
+    return native.macro_body(fitted, arg, quote_identifier(fn.python_name)), fitted
+
+
 # --------------------------------------------------------------------------- helpers
 def _literal(text: str) -> str:
     return "'" + str(text).replace("'", "''") + "'"
@@ -477,21 +488,15 @@ class QuerySession:
     def _native_body(self, fn: SqlFunction, plugin: str) -> str:
         """The macro text of a native function (fitted once per session, see ``native``)."""
         body = self._native_bodies.get(fn.name)
-        if body is not None:
-            return body
-        # a cast, so a wrong argument is refused naming its value (as a typed function is)
-        arg = f"CAST({quote_identifier(fn.parameters[0][0])} AS DOUBLE)"
-        if fn.native_sql is not None:
-            body = fn.native_sql
-        else:
+        if body is None:
             try:
-                fitted = native.fit(fn.function, fn.approximation)
+                body, fitted = native_body(fn)
             except Exception as exc:
                 raise PluginError(f"plugin {plugin!r}: SQL function {fn.name!r}: its "
                                   f"approximation could not be fitted: {exc}") from exc
-            self.fitted[fn.name] = fitted
-            body = native.macro_body(fitted, arg, quote_identifier(fn.python_name))
-        self._native_bodies[fn.name] = body
+            if fitted is not None:
+                self.fitted[fn.name] = fitted
+            self._native_bodies[fn.name] = body
         return body
 
     def _views(self, con, schema: str, out: OutputFolder) -> None:

@@ -18,7 +18,7 @@ import pytest
 from annotator.cosmology import Cosmology, preset
 from annotator.sql import SqlApproximation
 from annotator.sql.native import fit, macro_body
-from annotator.sql.session import QuerySession, arrow_udf
+from annotator.sql.session import QuerySession, arrow_udf, native_body
 from annotator_plugins.sql_functions import MU_ATOL, RTOL, Z_NATIVE, register_sql_functions
 
 COSMOLOGIES = {
@@ -44,15 +44,13 @@ def _through_duckdb(fn, values: np.ndarray) -> tuple[np.ndarray, str]:
     con = duckdb.connect()
     con.create_function(fn.python_name, arrow_udf(fn), ["DOUBLE"], fn.return_type,
                         type="arrow", null_handling="special", side_effects=False)
-    arg = "CAST(x AS DOUBLE)"
-    body = (fn.native_sql.replace("z", arg) if fn.native_sql is not None
-            else macro_body(fit(fn.function, fn.approximation), arg, fn.python_name))
-    con.execute(f"CREATE MACRO f(x) AS ({body})")
+    body, _ = native_body(fn)  # the very macro a QuerySession creates
+    con.execute(f'CREATE MACRO f("{fn.parameters[0][0]}") AS ({body})')
     con.register("t", pa.table({"x": pa.array(values, mask=np.zeros(len(values), bool))}))
     cast = "::DOUBLE" if fn.return_type == "BOOLEAN" else ""
     got = con.sql(f"SELECT f(x){cast} AS a, {fn.python_name}(x){cast} AS b FROM t "
-                      f"UNION ALL SELECT f(NULL){cast}, {fn.python_name}(NULL){cast}"
-                      ).to_arrow_table()
+                  f"UNION ALL SELECT f(NULL){cast}, {fn.python_name}(NULL){cast}"
+                  ).to_arrow_table()
     a = got.column("a").to_numpy(zero_copy_only=False).astype(float)
     b = got.column("b").to_numpy(zero_copy_only=False).astype(float)
     return a, b
